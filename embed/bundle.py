@@ -1,0 +1,112 @@
+"""Frozen encoder bundles: one ``.safetensors`` file whose metadata holds a JSON card.
+
+Layout: the encoder's tensors under their ``state_dict`` names, and one metadata entry
+``twinpatch.card`` with the card as JSON. The card holds the format name and version, the patch
+(size, plane, voxel axis, zero padding), the contrasts and their normalisation, the grid, the
+embedding size, the architecture, the resolved training configuration, a training summary, the
+package version and ``weights_sha256``: the SHA-256 of every tensor's name, dtype, shape and
+bytes in name order. Loading recomputes it and refuses a bundle that does not match.
+
+safetensors holds only raw tensors and strings, so reading a bundle runs no code from the file.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from pathlib import Path
+
+import torch
+from safetensors import safe_open
+from safetensors.torch import save_file
+
+from .dense import Encoder
+from .errors import BundleError
+from .model import PatchEncoder
+
+FORMAT = "twinpatch-encoder"
+FORMAT_VERSION = 1
+CARD_KEY = "twinpatch.card"
+
+
+def weights_sha256(tensors: dict[str, torch.Tensor]) -> str:
+    """SHA-256 over ``name, dtype, shape, bytes`` of every tensor, in name order."""
+    h = hashlib.sha256()
+    for name in sorted(tensors):
+        t = tensors[name].detach().contiguous().cpu()
+        h.update(f"{name}|{t.dtype}|{tuple(t.shape)}|".encode())
+        h.update(t.reshape(-1).view(torch.uint8).numpy().tobytes() if t.numel() else b"")
+    return h.hexdigest()
+
+
+def write_bundle(path: str | Path, tensors: dict[str, torch.Tensor], card: dict) -> Path:
+    """Write tensors + card atomically (temporary name, then rename). Returns the path."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tensors = {k: v.detach().contiguous().cpu() for k, v in tensors.items()}
+    card = dict(card, format=FORMAT, format_version=FORMAT_VERSION, weights_sha256=weights_sha256(tensors))
+    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
+    try:
+        save_file(tensors, str(tmp), metadata={CARD_KEY: json.dumps(card, sort_keys=True)})
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+    return path
+
+
+def read_bundle(path: str | Path, verify: bool = True) -> tuple[dict[str, torch.Tensor], dict]:
+    """Read and check a bundle. Returns ``(tensors, card)``; raises BundleError when anything is off."""
+    path = Path(path)
+    if not path.is_file():
+        raise BundleError(f"encoder bundle {path} not found; pass the .safetensors file written by `twinpatch export` "
+                          "or `twinpatch train` (RUN_DIR/encoder.safetensors)")
+    try:
+        with safe_open(str(path), framework="pt") as f:
+            meta = f.metadata() or {}
+            tensors = {k: f.get_tensor(k) for k in f.keys()}
+    except Exception as exc:  # safetensors raises several types for a damaged header or body
+        raise BundleError(f"{path}: not a readable safetensors file ({type(exc).__name__}: {exc}); "
+                          "re-export it with `twinpatch export RUN_DIR`") from None
+    if CARD_KEY not in meta:
+        raise BundleError(f"{path}: safetensors file without a twinpatch card (metadata key {CARD_KEY!r}); "
+                          "it was not written by `twinpatch export`")
+    try:
+        card = json.loads(meta[CARD_KEY])
+    except json.JSONDecodeError as exc:
+        raise BundleError(f"{path}: its card is not valid JSON ({exc}); re-export the bundle") from None
+    if card.get("format") != FORMAT:
+        raise BundleError(f"{path}: card format is {card.get('format')!r}, expected {FORMAT!r}")
+    if card.get("format_version") != FORMAT_VERSION:
+        raise BundleError(f"{path}: bundle format version {card.get('format_version')!r} is not supported by this "
+                          f"twinpatch (reads version {FORMAT_VERSION}); upgrade twinpatch or re-export the bundle")
+    if verify:
+        found = weights_sha256(tensors)
+        if found != card.get("weights_sha256"):
+            raise BundleError(f"{path}: weights checksum mismatch (card {str(card.get('weights_sha256'))[:12]}..., "
+                              f"file {found[:12]}...): the file was altered or damaged; re-export it")
+    return tensors, card
+
+
+def load_encoder(path: str | Path) -> Encoder:
+    """Load a bundle as a frozen :class:`~embed.dense.Encoder` (strict: every tensor must match)."""
+    tensors, card = read_bundle(path)
+    arch = card.get("architecture", {})
+    try:
+        module = PatchEncoder(int(arch["in_channels"]), int(arch["patch_size"]), tuple(arch["channels"]), int(arch["dim"]))
+        module.load_state_dict(tensors, strict=True)
+    except (KeyError, TypeError, RuntimeError, ValueError) as exc:
+        raise BundleError(f"{path}: card architecture and tensors disagree ({type(exc).__name__}: "
+                          f"{str(exc).splitlines()[0]}); re-export the bundle") from None
+    return Encoder(module, card)
+
+
+def card_summary(card: dict) -> dict:
+    """A few card fields for sidecars and printing."""
+    return {
+        "weights_sha256": card.get("weights_sha256"),
+        "contrasts": card.get("contrasts"),
+        "patch": card.get("patch"),
+        "dim": card.get("architecture", {}).get("dim"),
+        "twinpatch_version": card.get("twinpatch_version"),
+    }
