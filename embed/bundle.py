@@ -15,6 +15,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import warnings
 from pathlib import Path
 
 import torch
@@ -110,3 +111,71 @@ def card_summary(card: dict) -> dict:
         "dim": card.get("architecture", {}).get("dim"),
         "twinpatch_version": card.get("twinpatch_version"),
     }
+
+
+def verify(path: str | Path) -> tuple[dict, bool]:
+    """``(card, checksum_ok)`` without raising on a checksum mismatch (other damage still raises)."""
+    tensors, card = read_bundle(path, verify=False)
+    return card, weights_sha256(tensors) == card.get("weights_sha256")
+
+
+def describe(card: dict, checksum_ok: bool) -> str:
+    """The card in human form, for ``twinpatch inspect``."""
+    arch, patch, grid = card.get("architecture", {}), card.get("patch", {}), card.get("grid", {})
+    training, norm = card.get("training", {}), card.get("normalisation", {})
+    final = training.get("final_validation", {})
+    loss = card.get("config", {}).get("loss", {})
+    lines = [
+        f"format          {card.get('format')} v{card.get('format_version')} (twinpatch {card.get('twinpatch_version')})",
+        f"checksum        {'OK' if checksum_ok else 'MISMATCH: weights altered or damaged'} "
+        f"(sha256 {str(card.get('weights_sha256'))[:16]}...)",
+        f"contrasts       {', '.join(card.get('contrasts', []))} (channel order)",
+        f"normalisation   {norm.get('method')} inside the brain mask",
+        f"patch           {patch.get('size')} x {patch.get('size')} voxels, {patch.get('plane')} plane "
+        f"(voxel axis {patch.get('axis')} fixed), {patch.get('padding')} outside the grid",
+        f"grid            {' x '.join(map(str, grid.get('shape', [])))} voxels of "
+        f"{' x '.join(f'{v:g}' for v in grid.get('voxel_size_mm', []))} mm, orientation {grid.get('orientation')}",
+        f"embedding       {arch.get('dim')} dimensions; encoder widths {arch.get('channels')}, "
+        f"activation {arch.get('activation')}",
+        f"loss            reconstruction {loss.get('reconstruction')} + agreement weight {loss.get('agreement_weight')} "
+        f"({loss.get('schedule')}{', centred' if loss.get('centred') else ''})",
+        f"training        {training.get('steps')} steps in {training.get('seconds')} s on "
+        f"{len(training.get('train_controls', []))} controls ({len(training.get('val_controls', []))} held out)",
+    ]
+    if final:
+        lines.append(f"validation      reconstruction {final.get('reconstruction', float('nan')):.4f}, centred cosine "
+                     f"co-located {final.get('cos_colocated', float('nan')):.3f} vs random "
+                     f"{final.get('cos_random', float('nan')):.3f}, effective rank "
+                     f"{final.get('effective_rank', float('nan')):.1f}")
+    return "\n".join(lines)
+
+
+def export_onnx(encoder: Encoder, path: str | Path, opset: int = 17) -> Path:
+    """Write the encoder as ONNX (input ``x: (N, C, H, W)``, output ``z: (N, D, H-p+1, W-p+1)``).
+
+    N, H and W are dynamic: the same file embeds patches (H = W = p gives ``(N, D, 1, 1)``) or
+    whole zero-padded slices. The card goes into the model's metadata (key ``twinpatch.card``).
+    Needs the ``onnx`` package (``pip install onnx``).
+    """
+    try:
+        import onnx
+    except ImportError:
+        raise BundleError("--onnx needs the onnx package: pip install onnx") from None
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
+    p = encoder.patch_size
+    example = torch.zeros(1, encoder.in_channels, p + 4, p + 6)
+    try:
+        with warnings.catch_warnings():  # the TorchScript-based exporter is deprecated but needs no onnxscript
+            warnings.simplefilter("ignore", DeprecationWarning)
+            torch.onnx.export(encoder.module, (example,), str(tmp), input_names=["x"], output_names=["z"],
+                              dynamic_axes={"x": {0: "n", 2: "h", 3: "w"}, "z": {0: "n", 2: "h_out", 3: "w_out"}},
+                              opset_version=opset, dynamo=False)
+        model = onnx.load(str(tmp))
+        entry = model.metadata_props.add()
+        entry.key, entry.value = CARD_KEY, json.dumps(encoder.card, sort_keys=True)
+        onnx.save(model, str(tmp))
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+    return path

@@ -61,17 +61,36 @@ def build_parser() -> argparse.ArgumentParser:
              "twinpatch export runs/demo --out site_encoder.safetensors")
     p.add_argument("run_dir", metavar="RUN_DIR", type=Path)
     p.add_argument("--out", metavar="FILE", type=Path, help="bundle path (default RUN_DIR/encoder.safetensors)")
+    p.add_argument("--onnx", action="store_true", help="also write FILE with .onnx in place of .safetensors "
+                   "(needs the onnx package)")
 
-    p = _add(sub, "embed", "turn images on the template grid into 4D embedding maps (X, Y, Z, D)",
+    p = _add(sub, "inspect", "show an encoder bundle's card in human form and check its weights checksum",
+             "twinpatch inspect runs/demo/encoder.safetensors")
+    p.add_argument("bundle", metavar="BUNDLE", type=Path)
+    p.add_argument("--json", action="store_true", help="print the whole card as JSON")
+
+    p = _add(sub, "embed", "turn images on the template grid into embedding maps, or a cohort into an embedding store",
              "twinpatch embed runs/demo/encoder.safetensors --image T1w=t1.nii.gz --image FLAIR=flair.nii.gz "
              "--out emb.nii.gz\n  twinpatch embed runs/demo/encoder.safetensors --manifest demo_data/manifest.csv "
-             "--out maps/")
+             "--out store/ --shard 1/4\n  twinpatch embed runs/demo/encoder.safetensors --manifest "
+             "demo_data/manifest.csv --maps --out maps/")
     p.add_argument("bundle", metavar="BUNDLE", type=Path)
     src = p.add_mutually_exclusive_group(required=True)
     src.add_argument("--image", metavar="NAME=PATH", action="append", help="one contrast of one subject (repeat per contrast)")
     src.add_argument("--manifest", metavar="CSV", type=Path, help="embed every subject of a manifest into OUT (a folder)")
-    p.add_argument("--mask", metavar="PATH", type=Path, help="brain mask for --image (default: derived, see README)")
-    p.add_argument("--out", metavar="PATH", type=Path, required=True, help="output .nii.gz (with --image) or folder")
+    p.add_argument("--mask", metavar="PATH", type=Path, help="with --image: the subject's brain mask (default: derived, "
+                   "see README); with --manifest: the store's voxels (default: inside at least half the controls' masks)")
+    p.add_argument("--out", metavar="PATH", type=Path, required=True,
+                   help="with --image: output .nii.gz; with --manifest: the store folder (or maps folder with --maps)")
+    p.add_argument("--maps", action="store_true", help="with --manifest: one 4D NIfTI map per subject, not a store")
+    p.add_argument("--shard", metavar="I/N", help="with --manifest: embed every N-th subject from the I-th (1-based), "
+                   "for job arrays; the run that finishes the last subject merges the store")
+    p.add_argument("--float16", action="store_true", help="store embeddings as float16 (half the disk; rounding error "
+                   "recorded per subject)")
+    p.add_argument("--precision", choices=("fp32", "bf16"), default="fp32",
+                   help="compute precision (bf16: faster on CPUs with bf16 support, error ~1e-2 relative)")
+    p.add_argument("--allow-grid-mismatch", action="store_true",
+                   help="embed images whose grid differs from the encoder's (the differences go into the sidecar)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
     return parser
 
@@ -123,28 +142,65 @@ def _cmd_train(args) -> None:
 
 
 def _cmd_export(args) -> None:
+    from .bundle import export_onnx, load_encoder
     from .jobs import export_run
 
-    print(f"wrote {export_run(args.run_dir, args.out)}")
+    bundle = export_run(args.run_dir, args.out)
+    print(f"wrote {bundle}")
+    if args.onnx:
+        print(f"wrote {export_onnx(load_encoder(bundle), bundle.with_suffix('.onnx'))}")
+
+
+def _cmd_inspect(args) -> None:
+    import json
+
+    from .bundle import describe, verify
+
+    card, ok = verify(args.bundle)
+    print(json.dumps(card, indent=2, sort_keys=True) if args.json else f"{args.bundle}\n{describe(card, ok)}")
+    if not ok:
+        raise InputError(f"{args.bundle}: weights checksum mismatch: the file was altered or damaged; re-export it")
+
+
+def _parse_shard(text: str | None) -> tuple[int, int]:
+    if text is None:
+        return 1, 1
+    index, sep, count = text.partition("/")
+    if not sep or not index.isdigit() or not count.isdigit() or not 1 <= int(index) <= int(count):
+        raise InputError(f"--shard {text!r}: expected I/N with 1 <= I <= N, e.g. --shard 2/8")
+    return int(index), int(count)
 
 
 def _cmd_embed(args) -> None:
-    from .jobs import embed_manifest, embed_subject
+    from .jobs import embed_maps, embed_store, embed_subject
 
-    if args.manifest:
-        if args.mask:
-            raise InputError("--mask applies to --image only; with --manifest give masks in its `mask` column")
-        written = embed_manifest(args.bundle, args.manifest, args.out, progress=not args.quiet)
+    progress = not args.quiet
+    if args.image and (args.maps or args.shard or args.float16):
+        raise InputError("--maps, --shard and --float16 go with --manifest, not --image")
+    if args.manifest and args.maps:
+        if args.shard or args.float16 or args.mask:
+            raise InputError("--shard, --float16 and --mask apply to a store; with --maps give masks in the manifest")
+        written = embed_maps(args.bundle, args.manifest, args.out, progress=progress, precision=args.precision,
+                             allow_grid_mismatch=args.allow_grid_mismatch)
         print(f"wrote {len(written)} embedding maps into {args.out}")
+    elif args.manifest:
+        res = embed_store(args.bundle, args.manifest, args.out, shard=_parse_shard(args.shard),
+                          dtype="float16" if args.float16 else "float32", mask=args.mask, precision=args.precision,
+                          allow_grid_mismatch=args.allow_grid_mismatch, progress=progress)
+        state = "merged" if res["merged"] else f"{len(res['remaining'])} subjects still to embed (other shards)"
+        print(f"store {res['store']}: {res['embedded']} subjects embedded, {res['skipped']} already done, "
+              f"{res['n_voxels']} voxels; {state}")
     else:
         if not str(args.out).endswith((".nii", ".nii.gz")):
             raise InputError(f"--out {args.out}: with --image the output is one NIfTI file; end it in .nii.gz")
-        out = embed_subject(args.bundle, _parse_images(args.image), args.out, mask=args.mask, progress=not args.quiet)
+        out = embed_subject(args.bundle, _parse_images(args.image), args.out, mask=args.mask, progress=progress,
+                            precision=args.precision, allow_grid_mismatch=args.allow_grid_mismatch)
         print(f"wrote {out}")
     print(RESEARCH_NOTE)
 
 
-COMMANDS = {"synth": _cmd_synth, "train": _cmd_train, "export": _cmd_export, "embed": _cmd_embed}
+COMMANDS = {"synth": _cmd_synth, "train": _cmd_train, "export": _cmd_export, "inspect": _cmd_inspect,
+            "embed": _cmd_embed}
 
 
 def main(argv: list[str] | None = None) -> int:

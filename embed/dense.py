@@ -18,6 +18,10 @@ from tqdm.auto import tqdm
 from .errors import InputError
 from .model import PatchEncoder
 
+PRECISIONS = ("fp32", "bf16")
+TILE = 32  # output tile side for dense evaluation (measured: 32 beat 48, 64, 96 and whole slices)
+TILE_BATCH = 8  # tiles per encoder call
+
 
 class Encoder:
     """A frozen patch encoder with its card.
@@ -56,13 +60,7 @@ class Encoder:
             return np.zeros((0, self.dim), np.float32)
         return torch.cat(out).numpy().astype(np.float32, copy=False)
 
-    def embed_volume(self, vol: np.ndarray, mask: np.ndarray | None = None, batch_slices: int = 8,
-                     progress: bool = False) -> np.ndarray:
-        """``vol: (C, X, Y, Z)`` -> ``(D, X, Y, Z) float32``; zero outside ``mask: (X, Y, Z) bool``.
-
-        Equal, at every voxel (mask edges and grid border included), to :meth:`embed_patches`
-        on that voxel's patch with zero padding outside the grid.
-        """
+    def _check(self, vol: np.ndarray, mask: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
         vol = np.asarray(vol, dtype=np.float32)
         if vol.ndim != 4 or vol.shape[0] != self.in_channels:
             raise InputError(
@@ -74,30 +72,79 @@ class Encoder:
         mask = np.asarray(mask, dtype=bool)
         if mask.shape != vol.shape[1:]:
             raise InputError(f"embed_volume: mask shape {mask.shape} differs from the volume's grid {vol.shape[1:]}")
-        out = np.zeros((self.dim,) + vol.shape[1:], dtype=np.float32)
-        if not mask.any():
-            return out
-        a = self.axis
-        # Move the fixed axis first: slices (L, C, A, B) and mask (L, A, B).
-        v = np.moveaxis(vol, a + 1, 0)
-        m = np.moveaxis(mask, a, 0)
-        o = np.moveaxis(out, a + 1, 0)  # a view: writing o writes out
-        h = self.patch_size // 2
-        nz = np.argwhere(m)
-        (l0, a0, b0), (l1, a1, b1) = nz.min(0), nz.max(0) + 1
-        # In-plane crop [a0 - h, a1 + h) of the zero-padded slice; the encoder returns [a0, a1).
-        pad = np.pad(v[l0:l1], ((0, 0), (0, 0), (h, h), (h, h)))
-        crop = pad[:, :, a0:a1 + 2 * h, b0:b1 + 2 * h]
-        slices = [i for i in range(l1 - l0) if m[l0 + i].any()]
-        with torch.inference_mode():
-            for i in tqdm(range(0, len(slices), batch_slices), desc="embed", unit="batch",
+        return vol, mask
+
+    def _tiles(self, vol: np.ndarray, mask: np.ndarray, precision: str, progress: bool):
+        """Run the encoder over in-plane tiles that hold mask voxels, a batch at a time.
+
+        Each slice (along the fixed axis) is cut into ``TILE x TILE`` output tiles; a tile's input
+        is the tile plus ``p // 2`` voxels on each side of the zero-padded slice, so the valid
+        convolutions return exactly the tile. Small tiles keep the activations in cache (measured:
+        several times faster than whole slices on this CPU) and skip the empty corners of the box.
+        Yields ``(tiles, y)``: ``tiles`` a list of ``(slice, row0, col0)``, ``y: (n, D, TILE, TILE)``
+        float32 (rows and columns past the grid edge are junk and must be cut by the caller).
+        """
+        if precision not in PRECISIONS:
+            raise InputError(f"precision must be one of {PRECISIONS}, got {precision!r}")
+        v = np.moveaxis(vol, self.axis + 1, 0)  # (L, C, A, B) view
+        m = np.moveaxis(mask, self.axis, 0)  # (L, A, B) view
+        h, t = self.patch_size // 2, TILE
+        n_slices, _, size_a, size_b = v.shape
+        n_a, n_b = -(-size_a // t), -(-size_b // t)
+        busy = np.zeros((n_slices, n_a * t, n_b * t), bool)
+        busy[:, :size_a, :size_b] = m
+        busy = busy.reshape(n_slices, n_a, t, n_b, t).any(axis=(2, 4))
+        tiles = [(int(li), int(ti) * t, int(tj) * t) for li, ti, tj in np.argwhere(busy)]
+        pad = {}  # zero-padded slices, made as the tiles reach them and dropped after
+        autocast = torch.autocast("cpu", dtype=torch.bfloat16, enabled=precision == "bf16")
+        with torch.inference_mode(), autocast:
+            for k in tqdm(range(0, len(tiles), TILE_BATCH), desc="embed", unit="batch",
                           disable=not progress, leave=False):
-                idx = slices[i:i + batch_slices]
-                x = torch.from_numpy(np.ascontiguousarray(crop[idx]))
-                y = self.module(x).numpy()  # (n, D, a1 - a0, b1 - b0)
-                for k, li in enumerate(idx):
-                    keep = m[l0 + li, a0:a1, b0:b1]
-                    o[l0 + li, :, a0:a1, b0:b1] = y[k] * keep
+                batch = tiles[k:k + TILE_BATCH]
+                for li in {b[0] for b in batch} - pad.keys():
+                    padded = np.zeros((v.shape[1], n_a * t + 2 * h, n_b * t + 2 * h), np.float32)
+                    padded[:, h:h + size_a, h:h + size_b] = v[li]
+                    pad[li] = padded
+                x = np.stack([pad[li][:, r:r + t + 2 * h, c:c + t + 2 * h] for li, r, c in batch])
+                xt = torch.from_numpy(x).contiguous(memory_format=torch.channels_last)
+                y = self.module(xt).float().contiguous().numpy()
+                for li in [li for li in pad if li < batch[-1][0]]:
+                    del pad[li]
+                yield batch, y
+
+    def embed_volume(self, vol: np.ndarray, mask: np.ndarray | None = None, precision: str = "fp32", progress: bool = False) -> np.ndarray:
+        """``vol: (C, X, Y, Z)`` -> ``(D, X, Y, Z) float32``; zero outside ``mask: (X, Y, Z) bool``.
+
+        Equal, at every voxel (mask edges and grid border included), to :meth:`embed_patches`
+        on that voxel's patch with zero padding outside the grid (fp32; ``precision="bf16"``
+        computes in bfloat16, faster on CPUs with AMX or AVX-512 bf16, at a small error).
+        """
+        vol, mask = self._check(vol, mask)
+        out = np.zeros((self.dim,) + vol.shape[1:], dtype=np.float32)
+        o = np.moveaxis(out, self.axis + 1, 0)  # (L, D, A, B) view: writing o writes out
+        m = np.moveaxis(mask, self.axis, 0)
+        for batch, y in self._tiles(vol, mask, precision, progress):
+            for k, (li, r, c) in enumerate(batch):
+                keep = m[li, r:r + TILE, c:c + TILE]
+                o[li, :, r:r + TILE, c:c + TILE] = y[k][:, :keep.shape[0], :keep.shape[1]] * keep
+        return out
+
+    def embed_masked(self, vol: np.ndarray, mask: np.ndarray, precision: str = "fp32",
+                     progress: bool = False) -> np.ndarray:
+        """Embeddings of the mask voxels only: ``(V, D) float32`` in the order of ``np.argwhere(mask)``.
+
+        Equal to ``embed_volume(vol, mask)[:, mask].T`` without holding the full-grid map.
+        """
+        vol, mask = self._check(vol, mask)
+        order = np.full(mask.shape, -1, dtype=np.int64)
+        order[mask] = np.arange(int(mask.sum()))  # C order, as np.argwhere
+        out = np.zeros((int(mask.sum()), self.dim), dtype=np.float32)
+        o = np.moveaxis(order, self.axis, 0)
+        for batch, y in self._tiles(vol, mask, precision, progress):
+            for k, (li, r, c) in enumerate(batch):
+                where = o[li, r:r + TILE, c:c + TILE]
+                keep = where >= 0
+                out[where[keep]] = y[k][:, :keep.shape[0], :keep.shape[1]][:, keep].T
         return out
 
 

@@ -2,7 +2,8 @@
 
 ``export_run``: run directory (checkpoint + run.json) -> encoder bundle.
 ``train_job``: cohort -> training -> bundle -> one example embedding map.
-``embed_subject`` / ``embed_manifest``: bundle + NIfTI images -> 4D embedding maps.
+``embed_subject`` / ``embed_maps``: bundle + NIfTI images -> 4D embedding maps.
+``embed_store``: bundle + manifest -> cohort embedding store (resumable, shardable).
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ import time
 from pathlib import Path
 from typing import Callable
 
+import nibabel as nib
 import numpy as np
 
 from . import __version__
@@ -101,32 +103,56 @@ def export_run(run_dir: str | Path, out: str | Path | None = None) -> Path:
     return write_bundle(Path(out) if out is not None else run_dir / "encoder.safetensors", encoder, card)
 
 
-def check_subject_for_encoder(encoder: Encoder, contrasts: tuple[str, ...], affine: np.ndarray,
-                              shape: tuple[int, ...], where: str) -> None:
-    """Refuse images whose contrasts or grid differ from the encoder's card."""
-    if tuple(contrasts) != tuple(encoder.channel_names):
-        raise InputError(f"{where}: contrasts {list(contrasts)} do not match the encoder's "
-                         f"{list(encoder.channel_names)}; pass one image per contrast, named as in the bundle")
-    grid = encoder.card.get("grid", {})
-    if grid and tuple(grid["shape"]) != tuple(shape):
-        raise InputError(f"{where}: grid shape {tuple(shape)} differs from the encoder's {tuple(grid['shape'])}; "
-                         "resample the images onto the training template grid first")
-    if grid and not np.allclose(affine, np.asarray(grid["affine"]), rtol=0, atol=AFFINE_ATOL_MM):
-        raise InputError(f"{where}: affine differs from the encoder's grid by more than {AFFINE_ATOL_MM} mm; "
-                         "resample the images onto the training template grid first")
+def grid_differences(card: dict, affine: np.ndarray, shape: tuple[int, ...]) -> list[str]:
+    """How an image grid differs from the grid in an encoder card (empty list: same grid).
+
+    Compared: shape, orientation codes (nibabel ``aff2axcodes``), voxel size, and the whole
+    affine within ``AFFINE_ATOL_MM``.
+    """
+    grid = card.get("grid")
+    if not grid:
+        return []
+    want_affine = np.asarray(grid["affine"], dtype=float)
+    diffs = []
+    if tuple(grid["shape"]) != tuple(shape):
+        diffs.append(f"shape {tuple(shape)} vs the encoder's {tuple(grid['shape'])}")
+    found_codes, want_codes = "".join(nib.aff2axcodes(affine)), "".join(nib.aff2axcodes(want_affine))
+    if found_codes != want_codes:
+        diffs.append(f"orientation {found_codes} vs the encoder's {want_codes}")
+    found_zooms = np.sqrt((np.asarray(affine)[:3, :3] ** 2).sum(axis=0))
+    want_zooms = np.asarray(grid["voxel_size_mm"], dtype=float)
+    if not np.allclose(found_zooms, want_zooms, rtol=0, atol=AFFINE_ATOL_MM):
+        diffs.append(f"voxel size {tuple(np.round(found_zooms, 3))} mm vs the encoder's {tuple(want_zooms)} mm")
+    if not diffs and not np.allclose(affine, want_affine, rtol=0, atol=AFFINE_ATOL_MM):
+        worst = float(np.abs(np.asarray(affine) - want_affine).max())
+        diffs.append(f"affine differs by up to {worst:.3g} mm (tolerance {AFFINE_ATOL_MM} mm)")
+    return diffs
 
 
-def _embed_and_write(encoder: Encoder, subject: Subject, out: Path, extra: dict, progress: bool) -> Path:
-    emb = encoder.embed_volume(subject.data, subject.mask, progress=progress)
+def _guard(encoder: Encoder, subject: Subject, where: str, allow_grid_mismatch: bool) -> dict | None:
+    """Refuse a subject on another grid than the encoder's, unless overridden (then say what differs)."""
+    diffs = grid_differences(encoder.card, subject.affine, subject.mask.shape)
+    if diffs and not allow_grid_mismatch:
+        raise InputError(f"{where}: not on the encoder's grid: {'; '.join(diffs)}; resample the images onto the "
+                         "training template grid, or pass --allow-grid-mismatch to embed anyway (recorded)")
+    return {"allowed_grid_mismatch": diffs} if diffs else None
+
+
+def _embed_and_write(encoder: Encoder, subject: Subject, out: Path, extra: dict, progress: bool,
+                     precision: str = "fp32") -> Path:
+    emb = encoder.embed_volume(subject.data, subject.mask, precision=precision, progress=progress)
     sidecar = {"bundle": card_summary(encoder.card), "normalisation": subject.stats,
-               "mask_voxels": int(subject.mask.sum()), "research_use_only": True, **extra}
+               "mask_voxels": int(subject.mask.sum()), "precision": precision, "research_use_only": True, **extra}
     return write_embedding_map(out, emb, subject.affine, subject.header, sidecar)
 
 
 def embed_subject(bundle: str | Path, images: dict[str, Path], out: str | Path, mask: str | Path | None = None,
-                  progress: bool = True) -> Path:
-    """Embed one subject's images (contrast name -> NIfTI path) into a 4D map at ``out``."""
-    encoder = load_encoder(bundle)
+                  progress: bool = True, precision: str = "fp32", allow_grid_mismatch: bool = False) -> Path:
+    """Embed one subject's images (contrast name -> NIfTI path) into a 4D map at ``out``.
+
+    ``bundle`` is a bundle path or an already loaded :class:`Encoder`.
+    """
+    encoder = bundle if isinstance(bundle, Encoder) else load_encoder(bundle)
     names = tuple(images)
     missing = [c for c in encoder.channel_names if c not in images]
     if missing:
@@ -134,21 +160,130 @@ def embed_subject(bundle: str | Path, images: dict[str, Path], out: str | Path, 
                          f"add --image {missing[0]}=PATH")
     ordered = {c: Path(images[c]) for c in encoder.channel_names}
     normalisation = encoder.card.get("normalisation", {}).get("method", "zscore")
+    extra_names = [n for n in names if n not in encoder.channel_names]
+    if extra_names:
+        raise InputError(f"--image {extra_names[0]}: the encoder has no contrast of that name; "
+                         f"its contrasts are {list(encoder.channel_names)}")
     subject = load_subject(ordered, mask=mask, normalisation=normalisation)
-    check_subject_for_encoder(encoder, tuple(ordered), subject.affine, subject.mask.shape, str(ordered[names[0]]))
-    inputs = {c: str(p) for c, p in ordered.items()}
-    return _embed_and_write(encoder, subject, Path(out), {"inputs": inputs}, progress)
+    override = _guard(encoder, subject, str(ordered[encoder.channel_names[0]]), allow_grid_mismatch)
+    extra = {"inputs": {c: str(p) for c, p in ordered.items()}, **(override or {})}
+    return _embed_and_write(encoder, subject, Path(out), extra, progress, precision)
 
 
-def embed_manifest(bundle: str | Path, manifest: str | Path, out_dir: str | Path, progress: bool = True) -> list[Path]:
-    """Embed every subject of a manifest into ``OUT_DIR/<subject>_embedding.nii.gz``."""
+def store_mask(rows: list, grid_shape: tuple[int, ...], progress: bool = True) -> np.ndarray:
+    """The store's voxels: inside the brain masks of at least half of the controls (as the cohort mask).
+
+    Each control's mask comes from its manifest ``mask`` file, else is derived from its images.
+    """
+    from tqdm.auto import tqdm
+
+    from .cohort import derive_mask, load_image
+
+    controls = [r for r in rows if r.role == "control"]
+    if not controls:
+        raise InputError("the manifest has no control: the store's voxels are the controls' common brain; "
+                         "add controls or pass --mask")
+    votes = np.zeros(grid_shape, np.int32)
+    for row in tqdm(controls, desc="store mask", unit="subject", disable=not progress):
+        if row.mask is not None:
+            m = np.asarray(load_image(row.mask, f"mask of subject {row.subject}").dataobj) != 0
+        else:
+            m = derive_mask(np.stack([np.asarray(load_image(p, f"{c} image of subject {row.subject}").dataobj,
+                                                 dtype=np.float32) for c, p in row.images.items()]))
+        if m.shape != tuple(grid_shape):
+            raise InputError(f"mask of subject {row.subject}: shape {m.shape} differs from the encoder's grid "
+                             f"{tuple(grid_shape)}")
+        votes += m
+    return 2 * votes >= len(controls)
+
+
+def embed_store(bundle: str | Path, manifest: str | Path, out: str | Path, *, shard: tuple[int, int] = (1, 1),
+                dtype: str = "float32", mask: str | Path | None = None, precision: str = "fp32",
+                allow_grid_mismatch: bool = False, progress: bool = True) -> dict:
+    """Embed a manifest's subjects into a cohort embedding store (see :mod:`embed.store`).
+
+    Resumable (finished subjects are skipped); ``shard=(i, n)`` embeds every n-th subject from
+    the i-th (1-based), so a job array can split the cohort; whichever run finishes the last
+    subject merges the store.
+    """
+    from tqdm.auto import tqdm
+
+    from . import store as st
+    from .cohort import load_image
+
+    encoder = load_encoder(bundle)
+    rows, contrasts = read_manifest(manifest)
+    missing = [c for c in encoder.channel_names if c not in contrasts]
+    if missing:
+        raise InputError(f"{manifest}: no column for contrast {missing[0]!r}; the encoder needs "
+                         f"{list(encoder.channel_names)}")
+    index, count = shard
+    if not 1 <= index <= count:
+        raise InputError(f"--shard {index}/{count}: expected I/N with 1 <= I <= N, e.g. --shard 1/4")
+    out = Path(out)
+    grid = encoder.card.get("grid", {})
+    if (out / "store.json").exists():
+        voxels = np.load(out / "voxels.npy")
+    else:
+        if mask is not None:
+            m = np.asarray(load_image(mask, "store mask").dataobj) != 0
+        else:
+            m = store_mask(rows, tuple(grid.get("shape", ())) or _first_shape(rows), progress)
+        if not m.any():
+            raise InputError(f"the store mask is empty ({mask or 'controls common brain'}); check the masks")
+        voxels = np.argwhere(m)
+    producer = {"bundle_sha256": encoder.card.get("weights_sha256"), "precision": precision,
+                "mask": str(mask) if mask else "controls (majority)"}
+    st.create(out, subjects=[r.subject for r in rows], roles=[r.role for r in rows], voxels=voxels,
+              dim=encoder.dim, dtype=dtype, grid=grid, producer=producer)
+    vmask = np.zeros(tuple(grid.get("shape", ())) or _first_shape(rows), bool)
+    vmask[tuple(voxels.T)] = True
+    normalisation = encoder.card.get("normalisation", {}).get("method", "zscore")
+    mine = rows[index - 1::count]
+    done = 0
+    for row in tqdm(mine, desc=f"embed store {index}/{count}", unit="subject", disable=not progress):
+        if st.subject_done(out, row.subject):
+            continue
+        ordered = {c: row.images[c] for c in encoder.channel_names}
+        subject = load_subject(ordered, subject=row.subject, role=row.role, mask=row.mask,
+                               normalisation=normalisation)
+        override = _guard(encoder, subject, f"subject {row.subject}", allow_grid_mismatch)
+        if subject.mask.shape != vmask.shape:
+            raise InputError(f"subject {row.subject}: grid {subject.mask.shape} differs from the store's {vmask.shape}")
+        emb = encoder.embed_masked(subject.data, vmask, precision=precision)
+        st.write_subject(out, row.subject, emb, {"subject": row.subject, "role": row.role,
+                                                 "inputs": {c: str(p) for c, p in ordered.items()},
+                                                 "normalisation": subject.stats, **(override or {})})
+        done += 1
+    remaining = st.missing_subjects(out)
+    merged = False
+    if not remaining:
+        st.merge(out, progress=progress)
+        merged = True
+    return {"store": out, "embedded": done, "skipped": len(mine) - done, "remaining": remaining, "merged": merged,
+            "n_voxels": int(len(voxels))}
+
+
+def _first_shape(rows: list) -> tuple[int, ...]:
+    from .cohort import load_image
+
+    first = next(iter(rows[0].images.values()))
+    return tuple(load_image(first, f"image of subject {rows[0].subject}").shape[:3])
+
+
+def embed_maps(bundle: str | Path, manifest: str | Path, out_dir: str | Path, progress: bool = True,
+               precision: str = "fp32", allow_grid_mismatch: bool = False) -> list[Path]:
+    """Embed every subject of a manifest into ``OUT_DIR/<subject>_embedding.nii.gz`` (4D NIfTI maps)."""
     from tqdm.auto import tqdm
 
     rows, _ = read_manifest(manifest)
+    encoder = load_encoder(bundle)
     out_dir = Path(out_dir)
     written = []
     for row in tqdm(rows, desc="embed subjects", unit="subject", disable=not progress):
-        written.append(embed_subject(bundle, row.images, out_dir / f"{row.subject}_embedding.nii.gz",
-                                     mask=row.mask, progress=False))
+        images = {c: p for c, p in row.images.items() if c in encoder.channel_names}
+        written.append(embed_subject(encoder, images, out_dir / f"{row.subject}_embedding.nii.gz",
+                                     mask=row.mask, progress=False, precision=precision,
+                                     allow_grid_mismatch=allow_grid_mismatch))
     (out_dir / "subjects.json").write_text(json.dumps([r.subject for r in rows], indent=1), encoding="utf-8")
     return written

@@ -286,3 +286,50 @@ def test_loading_never_calls_torch_load_or_pickle(bundle, monkeypatch):
     x = torch.ones(2, C, P, P)
     with torch.no_grad():
         np.testing.assert_array_equal(enc.embed_patches(x), module.embed(x).numpy())
+
+
+# --------------------------------------------------------------------------------------------
+# portable bundles: ONNX, inspect
+
+
+def test_onnx_export_matches_torch_on_patches_and_a_whole_slice(bundle, tmp_path):
+    import onnx
+    import onnxruntime as ort
+
+    from embed.bundle import export_onnx
+
+    path, module = bundle
+    enc = load_encoder(path)
+    out = export_onnx(enc, tmp_path / "enc.onnx")
+    model = onnx.load(str(out))
+    onnx.checker.check_model(model)  # the ONNX package's own validity check
+    meta = {p.key: p.value for p in model.metadata_props}
+    assert json.loads(meta[CARD_KEY])["weights_sha256"] == enc.card["weights_sha256"]
+    session = ort.InferenceSession(str(out), providers=["CPUExecutionProvider"])
+    rng = np.random.default_rng(9)
+    patches = rng.normal(size=(17, C, P, P)).astype(np.float32)
+    z = session.run(None, {"x": patches})[0]
+    assert z.shape == (17, DIM, 1, 1)
+    assert np.abs(z[:, :, 0, 0] - enc.embed_patches(patches)).max() <= 1e-4
+    # A whole zero-padded slice gives the dense map of that slice, as embed_volume does.
+    vol = rng.normal(size=(C, 12, 9, 10)).astype(np.float32)
+    h = P // 2
+    dense = enc.embed_volume(vol)  # card axis 1: slices are vol[:, :, y, :]
+    sl = np.pad(vol[:, :, 4, :], ((0, 0), (h, h), (h, h)))[None]
+    y = session.run(None, {"x": sl})[0][0]
+    assert np.abs(y - dense[:, :, 4, :]).max() <= 1e-4
+
+
+def test_describe_and_verify(bundle, tmp_path):
+    from embed.bundle import describe, verify
+
+    path, _ = bundle
+    card, ok = verify(path)
+    text = describe(card, ok)
+    assert ok and "checksum        OK" in text and "T1w, FLAIR" in text and "coronal plane" in text
+    data = bytearray(path.read_bytes())
+    data[-1] ^= 0x01
+    bad = tmp_path / "bad.safetensors"
+    bad.write_bytes(bytes(data))
+    card, ok = verify(bad)
+    assert not ok and "MISMATCH" in describe(card, ok)

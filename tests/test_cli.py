@@ -17,7 +17,7 @@ from embed.cohort import load_subject
 
 from .conftest import TINY_OVERRIDES
 
-COMMANDS = ["synth", "train", "export", "embed"]
+COMMANDS = ["synth", "train", "export", "inspect", "embed"]
 
 
 @pytest.mark.parametrize("command", COMMANDS)
@@ -130,8 +130,9 @@ def test_export_and_embed_by_command(tiny_run, tiny_manifest, tmp_path, capsys):
     got = np.moveaxis(nib.load(out).get_fdata(dtype=np.float32), -1, 0)
     np.testing.assert_allclose(got, enc.embed_volume(subject.data, subject.mask), atol=1e-6)
     assert out.with_name("emb.json").is_file()
-    # Many subjects at once from a manifest.
-    assert main(["embed", str(bundle), "--manifest", str(tiny_manifest), "--out", str(tmp_path / "maps"), "--quiet"]) == 0
+    # Many subjects at once from a manifest, as 4D maps.
+    assert main(["embed", str(bundle), "--manifest", str(tiny_manifest), "--maps", "--out", str(tmp_path / "maps"),
+                 "--quiet"]) == 0
     assert len(list((tmp_path / "maps").glob("*_embedding.nii.gz"))) == len(_rows(tiny_manifest))
 
 
@@ -173,3 +174,18 @@ def test_train_py_shim_passes_arguments(tmp_path):
     out = subprocess.run([sys.executable, "train.py", "--help"], capture_output=True, text=True,
                          cwd=__import__("pathlib").Path(__file__).parents[1])
     assert out.returncode == 0 and "twinpatch train" in out.stdout
+
+
+def test_inspect_and_onnx_export(tiny_run, tmp_path, capsys):
+    assert main(["inspect", str(tiny_run["bundle"])]) == 0
+    out = capsys.readouterr().out
+    assert "checksum        OK" in out and "axial plane" in out
+    assert main(["inspect", str(tiny_run["bundle"]), "--json"]) == 0
+    assert '"weights_sha256"' in capsys.readouterr().out
+    bundle = tmp_path / "b.safetensors"
+    assert main(["export", str(tiny_run["run_dir"]), "--out", str(bundle), "--onnx"]) == 0
+    assert bundle.with_suffix(".onnx").is_file()
+    data = bytearray(bundle.read_bytes())
+    data[-1] ^= 0x01
+    bundle.write_bytes(bytes(data))
+    _fails(["inspect", bundle], capsys, "checksum mismatch")

@@ -7,6 +7,8 @@ import numpy as np
 import pytest
 import torch
 
+import embed.dense
+
 from embed.dense import Encoder, write_embedding_map
 from embed.errors import InputError
 from embed.model import build
@@ -47,12 +49,16 @@ def masks(rng):
 @pytest.mark.parametrize("axis", [0, 1, 2])
 @pytest.mark.parametrize("p, channels", [(5, (4, 6)), (3, (4,)), (7, (3,))])
 @pytest.mark.parametrize("which", ["none", "random", "corner", "single"])
-def test_embed_volume_equals_embed_patches(axis, p, channels, which):
+@pytest.mark.parametrize("tile", [32, 4])
+def test_embed_volume_equals_embed_patches(axis, p, channels, which, tile, monkeypatch):
+    # tile=4 cuts the small grid into many tiles, so tile edges and partial tiles are exercised.
+    monkeypatch.setattr(embed.dense, "TILE", tile)
+    monkeypatch.setattr(embed.dense, "TILE_BATCH", 3)
     rng = np.random.default_rng(axis * 100 + p)
     vol = rng.normal(size=(2,) + SHAPE).astype(np.float32)
     mask = masks(rng)[which]
     enc = make_encoder(axis, p, channels)
-    emb = enc.embed_volume(vol, mask, batch_slices=3)
+    emb = enc.embed_volume(vol, mask)
     assert emb.shape == (enc.dim,) + SHAPE and emb.dtype == np.float32
     full = np.ones(SHAPE, bool) if mask is None else mask
     voxels = np.argwhere(full)
@@ -60,15 +66,31 @@ def test_embed_volume_equals_embed_patches(axis, p, channels, which):
     got = emb[:, voxels[:, 0], voxels[:, 1], voxels[:, 2]].T
     assert np.abs(got - want).max() <= 1e-5  # fp32
     assert (emb[:, ~full] == 0).all()  # zero outside the mask
+    if mask is not None:  # the masked-only path gives the same vectors, in np.argwhere order
+        assert np.abs(enc.embed_masked(vol, mask) - got).max() <= 1e-5
 
 
-def test_embed_volume_batching_does_not_change_the_result():
+def test_embed_volume_tiling_does_not_change_the_result(monkeypatch):
     rng = np.random.default_rng(1)
     vol = rng.normal(size=(2,) + SHAPE).astype(np.float32)
     enc = make_encoder(1)
-    # Same values up to float32 rounding (convolution kernels may sum in another order per batch size).
-    np.testing.assert_allclose(enc.embed_volume(vol, batch_slices=1), enc.embed_volume(vol, batch_slices=64),
-                               rtol=0, atol=1e-6)
+    whole = enc.embed_volume(vol)
+    monkeypatch.setattr(embed.dense, "TILE", 3)
+    monkeypatch.setattr(embed.dense, "TILE_BATCH", 1)
+    # Same values up to float32 rounding (convolution kernels may sum in another order per shape).
+    np.testing.assert_allclose(enc.embed_volume(vol), whole, rtol=0, atol=1e-6)
+
+
+def test_bf16_is_close_to_fp32():
+    rng = np.random.default_rng(4)
+    vol = rng.normal(size=(2,) + SHAPE).astype(np.float32)
+    enc = make_encoder(2)
+    fp32, bf16 = enc.embed_volume(vol), enc.embed_volume(vol, precision="bf16")
+    # bfloat16 keeps 8 significant bits (about 2-3 decimal digits): errors of ~1 % of the scale.
+    assert np.abs(bf16 - fp32).max() <= 0.03 * np.abs(fp32).max()
+    assert not np.array_equal(bf16, fp32)
+    with pytest.raises(InputError, match="precision must be one of"):
+        enc.embed_volume(vol, precision="fp8")
 
 
 def test_embed_volume_is_not_all_zero_and_depends_on_the_axis():

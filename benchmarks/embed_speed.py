@@ -1,0 +1,115 @@
+"""Embedding a whole 1 mm two-contrast volume: dense path vs per-patch path, in one run.
+
+    python benchmarks/embed_speed.py [--sample 200000] [--dim 32]
+
+The volume is one synthetic subject (T1w-like and FLAIR-like) built from the MNI152 2009 1 mm
+templates that nilearn ships (grid 197 x 233 x 189, about 1.9 million brain voxels), z-scored in
+its mask; the encoder has the demo architecture (patch 7, channels [32, 64]) with random weights
+(speed does not depend on the weights). Printed:
+
+- dense path (``Encoder.embed_masked``: whole slices, only mask voxels kept) in fp32 and bf16,
+  voxels/s and seconds per volume;
+- per-patch path (gather each voxel's patch, batch, encode) on a random sample of the same mask
+  voxels, voxels/s; the ratio dense / per-patch;
+- the largest difference between the two paths on the sample (fp32), and the bf16 error;
+- peak RSS of embedding the mask voxels only vs the full-grid map, each in a fresh process.
+
+Other processes on the machine make absolute numbers noisy; the ratios come from one run.
+"""
+
+from __future__ import annotations
+
+import argparse
+import resource
+import subprocess
+import sys
+import time
+
+import numpy as np
+
+
+def make_volume():
+    from embed.cohort import normalise
+    from embed.synth import load_template, make_subject
+
+    template = load_template(1)
+    subject = make_subject(template, np.random.default_rng([7, 0, 0]))
+    mask = subject.mask.astype(bool)
+    vol = np.stack([normalise(subject.images[c].astype(np.float32), mask)[0] for c in ("T1w", "FLAIR")])
+    return vol, mask
+
+
+def make_encoder(dim: int):
+    from embed.dense import Encoder
+    from embed.model import build
+
+    module = build(2, 7, (32, 64), dim, 0).encoder
+    return Encoder(module, {"contrasts": ["T1w", "FLAIR"], "patch": {"axis": 2, "plane": "axial", "size": 7}})
+
+
+def peak_rss_child(mode: str, dim: int) -> float:
+    """Peak RSS (MB) of a fresh process that builds the volume and embeds it (``masked`` or ``full``)."""
+    code = (f"import sys, resource; sys.argv=['x']; from benchmarks.embed_speed import *; "
+            f"vol, mask = make_volume(); enc = make_encoder({dim}); "
+            f"base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss; "
+            f"enc.{'embed_masked' if mode == 'masked' else 'embed_volume'}(vol, mask); "
+            f"print(base / 1024, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    before, after = map(float, out.stdout.split()[-2:])
+    return before, after
+
+
+def main() -> None:
+    import torch
+
+    from embed.pairs import gather_patches
+
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--sample", type=int, default=200_000, help="voxels for the per-patch path")
+    ap.add_argument("--dim", type=int, default=32, help="embedding size")
+    args = ap.parse_args()
+
+    t0 = time.perf_counter()
+    vol, mask = make_volume()
+    enc = make_encoder(args.dim)
+    n_vox = int(mask.sum())
+    print(f"volume {vol.shape} ({n_vox} mask voxels) built in {time.perf_counter() - t0:.1f} s; "
+          f"{torch.get_num_threads()} threads")
+
+    enc.embed_masked(vol[:, :, :, 90:94], mask[:, :, 90:94])  # warm-up (one-off allocator and kernel setup)
+    times = {}
+    results = {}
+    for precision in ("fp32", "bf16"):
+        t0 = time.perf_counter()
+        results[precision] = enc.embed_masked(vol, mask, precision=precision)
+        times[precision] = time.perf_counter() - t0
+
+    rng = np.random.default_rng(0)
+    voxels = np.argwhere(mask)
+    pick = np.sort(rng.choice(n_vox, size=min(args.sample, n_vox), replace=False))
+    t0 = time.perf_counter()
+    patches = gather_patches(vol[None], np.zeros(len(pick), np.int64), voxels[pick], 7, 2)
+    z = enc.embed_patches(patches, batch_size=4096)
+    t_patch = time.perf_counter() - t0
+
+    rate_patch = len(pick) / t_patch
+    print(f"per-patch path  fp32: {rate_patch:>10.0f} voxels/s  ({len(pick)} sampled voxels, {t_patch:.1f} s; "
+          f"a whole volume would take {n_vox / rate_patch:.0f} s)")
+    for precision in ("fp32", "bf16"):
+        rate = n_vox / times[precision]
+        print(f"dense path      {precision}: {rate:>10.0f} voxels/s  ({times[precision]:.1f} s per volume; "
+              f"{rate / rate_patch:.1f}x the per-patch path)")
+    diff = np.abs(results["fp32"][pick] - z).max()
+    scale = np.abs(results["fp32"]).max()
+    bf16_err = np.abs(results["bf16"] - results["fp32"])
+    print(f"dense vs per-patch (fp32): max abs difference {diff:.2e}")
+    print(f"bf16 vs fp32: max abs error {bf16_err.max():.2e}, mean {bf16_err.mean():.2e} "
+          f"(largest |embedding| {scale:.2f}; relative {bf16_err.max() / scale:.2e})")
+    for mode in ("masked", "full"):
+        before, after = peak_rss_child(mode, args.dim)
+        print(f"peak RSS, {mode:>6} output: {after:>7.0f} MB (volume built: {before:.0f} MB; "
+              f"embedding adds {after - before:.0f} MB)")
+
+
+if __name__ == "__main__":
+    main()
