@@ -14,16 +14,19 @@ its mask; the encoder has the demo architecture (patch 7, channels [32, 64]) wit
 - the largest difference between the two paths on the sample (fp32), and the bf16 error;
 - peak RSS of embedding the mask voxels only vs the full-grid map, each in a fresh process.
 
-Other processes on the machine make absolute numbers noisy; the ratios come from one run.
+Other processes on the machine make absolute numbers noisy (PyTorch's OpenMP threads slow down
+many-fold when another process takes a core): each path is timed ``--repeat`` times and the median
+printed; the ratios come from one run.
 """
 
 from __future__ import annotations
 
 import argparse
-import resource
 import subprocess
 import sys
+import tempfile
 import time
+from pathlib import Path
 
 import numpy as np
 
@@ -47,13 +50,27 @@ def make_encoder(dim: int):
     return Encoder(module, {"contrasts": ["T1w", "FLAIR"], "patch": {"axis": 2, "plane": "axial", "size": 7}})
 
 
-def peak_rss_child(mode: str, dim: int) -> float:
-    """Peak RSS (MB) of a fresh process that builds the volume and embeds it (``masked`` or ``full``)."""
-    code = (f"import sys, resource; sys.argv=['x']; from benchmarks.embed_speed import *; "
-            f"vol, mask = make_volume(); enc = make_encoder({dim}); "
-            f"base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss; "
+def vm_hwm_mb() -> float:
+    """Peak resident set size of this process so far, in MB (Linux ``/proc/self/status``, VmHWM)."""
+    for line in open("/proc/self/status"):
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024
+    raise RuntimeError("no VmHWM in /proc/self/status")
+
+
+def peak_rss_child(saved: str, mode: str, dim: int) -> tuple[float, float]:
+    """Peak RSS (MB) of a fresh process that loads the saved volume and embeds it (``masked`` or ``full``).
+
+    Returns (peak after loading the volume and the encoder, peak after embedding).
+    """
+    # VmHWM (peak resident set of this process image, Linux /proc) rather than ru_maxrss, which a
+    # child started by fork + exec inherits from the parent's peak.
+    code = (f"import numpy as np, sys; sys.path.insert(0, {str(Path(__file__).parents[1])!r}); "
+            f"from benchmarks.embed_speed import make_encoder, vm_hwm_mb; d = np.load({saved!r}); "
+            f"vol, mask = d['vol'], d['mask']; enc = make_encoder({dim}); "
+            f"enc.embed_masked(vol[:, :, :, 90:94], mask[:, :, 90:94]); base = vm_hwm_mb(); "
             f"enc.{'embed_masked' if mode == 'masked' else 'embed_volume'}(vol, mask); "
-            f"print(base / 1024, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)")
+            f"print(base, vm_hwm_mb())")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     before, after = map(float, out.stdout.split()[-2:])
     return before, after
@@ -67,6 +84,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--sample", type=int, default=200_000, help="voxels for the per-patch path")
     ap.add_argument("--dim", type=int, default=32, help="embedding size")
+    ap.add_argument("--repeat", type=int, default=3, help="timed runs per path; the median is printed")
     args = ap.parse_args()
 
     t0 = time.perf_counter()
@@ -77,20 +95,25 @@ def main() -> None:
           f"{torch.get_num_threads()} threads")
 
     enc.embed_masked(vol[:, :, :, 90:94], mask[:, :, 90:94])  # warm-up (one-off allocator and kernel setup)
-    times = {}
-    results = {}
+    times, results = {}, {}
     for precision in ("fp32", "bf16"):
-        t0 = time.perf_counter()
-        results[precision] = enc.embed_masked(vol, mask, precision=precision)
-        times[precision] = time.perf_counter() - t0
+        runs = []
+        for _ in range(args.repeat):
+            t0 = time.perf_counter()
+            results[precision] = enc.embed_masked(vol, mask, precision=precision)
+            runs.append(time.perf_counter() - t0)
+        times[precision] = float(np.median(runs))
 
     rng = np.random.default_rng(0)
     voxels = np.argwhere(mask)
     pick = np.sort(rng.choice(n_vox, size=min(args.sample, n_vox), replace=False))
-    t0 = time.perf_counter()
-    patches = gather_patches(vol[None], np.zeros(len(pick), np.int64), voxels[pick], 7, 2)
-    z = enc.embed_patches(patches, batch_size=4096)
-    t_patch = time.perf_counter() - t0
+    runs = []
+    for _ in range(args.repeat):
+        t0 = time.perf_counter()
+        patches = gather_patches(vol[None], np.zeros(len(pick), np.int64), voxels[pick], 7, 2)
+        z = enc.embed_patches(patches, batch_size=4096)
+        runs.append(time.perf_counter() - t0)
+    t_patch = float(np.median(runs))
 
     rate_patch = len(pick) / t_patch
     print(f"per-patch path  fp32: {rate_patch:>10.0f} voxels/s  ({len(pick)} sampled voxels, {t_patch:.1f} s; "
@@ -105,10 +128,13 @@ def main() -> None:
     print(f"dense vs per-patch (fp32): max abs difference {diff:.2e}")
     print(f"bf16 vs fp32: max abs error {bf16_err.max():.2e}, mean {bf16_err.mean():.2e} "
           f"(largest |embedding| {scale:.2f}; relative {bf16_err.max() / scale:.2e})")
-    for mode in ("masked", "full"):
-        before, after = peak_rss_child(mode, args.dim)
-        print(f"peak RSS, {mode:>6} output: {after:>7.0f} MB (volume built: {before:.0f} MB; "
-              f"embedding adds {after - before:.0f} MB)")
+    with tempfile.TemporaryDirectory() as tmp:
+        saved = str(Path(tmp) / "volume.npz")
+        np.savez(saved, vol=vol, mask=mask)
+        for mode in ("masked", "full"):
+            before, after = peak_rss_child(saved, mode, args.dim)
+            print(f"peak RSS, {mode:>6} output: {after:>6.0f} MB (volume and encoder loaded: {before:.0f} MB; "
+                  f"embedding adds {after - before:.0f} MB)")
 
 
 if __name__ == "__main__":

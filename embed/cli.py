@@ -46,8 +46,40 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--voxel-size", type=float, default=2.0, metavar="MM", help="isotropic voxel size in mm (default 2)")
 
+    p = _add(sub, "prepare", "validate, normalise and quality-control a cohort into a cache that training reads",
+             "twinpatch prepare --manifest demo_data/manifest.csv --out cache/demo\n  twinpatch prepare --bids "
+             "derivatives/ --space MNI152NLin2009cAsym --contrasts T1w,FLAIR --out cache/site --exclude-flagged")
+    src = p.add_mutually_exclusive_group(required=True)
+    src.add_argument("--manifest", metavar="CSV", type=Path, help="a manifest.csv (see README)")
+    src.add_argument("--bids", metavar="DIR", type=Path, help="a BIDS derivatives folder of template-space images")
+    p.add_argument("--space", help="with --bids: the space-<label> entity of the images")
+    p.add_argument("--contrasts", help="with --bids: image suffixes, comma-separated, e.g. T1w,FLAIR")
+    p.add_argument("--session", help="with --bids: the ses-<label> to use when subjects have several")
+    p.add_argument("--participants", type=Path, help="with --bids: participants.tsv (default: ROOT/participants.tsv)")
+    p.add_argument("--group-column", default="group", help="with --bids: participants.tsv column of the role "
+                   "(default group)")
+    p.add_argument("--control-values", default="control", help="with --bids: values meaning control (comma-separated)")
+    p.add_argument("--case-values", default="case,patient", help="with --bids: values meaning case (comma-separated)")
+    p.add_argument("--out", metavar="CACHE_DIR", type=Path, required=True)
+    p.add_argument("--normalisation", choices=("zscore", "histogram"), default="zscore",
+                   help="z-score inside the mask (default) or piecewise-linear histogram standardisation")
+    p.add_argument("--jobs", type=int, default=1, help="parallel decoding threads (default 1)")
+    p.add_argument("--exclude-flagged", action="store_true", help="leave out the controls that quality control flags")
+    p.add_argument("--qc-threshold", type=float, default=3.5, help="flag below this robust z-score (default 3.5)")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+
+    p = _add(sub, "qc", "quality control of a prepared cohort: similarity to the cohort, outliers, montage",
+             "twinpatch qc cache/demo")
+    p.add_argument("cache", metavar="CACHE_DIR", type=Path)
+    p.add_argument("--threshold", type=float, default=3.5, help="flag below this robust z-score (default 3.5)")
+    p.add_argument("--no-montage", action="store_true", help="skip the PNG montage")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+
     p = _add(sub, "train", "train an encoder on a cohort's controls, export it, embed one example case",
-             "twinpatch train configs/demo.toml --out runs/demo --set train.steps=500")
+             "twinpatch train configs/demo.toml --out runs/demo --set train.steps=500\n"
+             "  twinpatch train --resume runs/demo            # continue after a crash or Ctrl-C\n"
+             "  twinpatch train configs/demo.toml --cohort site_b/manifest.csv --init shared.safetensors --out runs/b\n"
+             "  torchrun --nproc_per_node 2 -m embed.cli train configs/demo.toml --out runs/ddp   # data parallel")
     p.add_argument("config", metavar="CONFIG", nargs="?", type=Path,
                    help="TOML configuration (default: the built-in demo configuration, as configs/demo.toml)")
     p.add_argument("--cohort", metavar="MANIFEST", help="manifest.csv to train on (same as --set cohort.manifest=...)")
@@ -55,6 +87,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--set", metavar="KEY=VALUE", action="append", default=[], dest="overrides",
                    help="override a configuration key, e.g. --set train.steps=200 (repeatable)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing run in RUN_DIR")
+    p.add_argument("--resume", metavar="RUN_DIR", type=Path,
+                   help="continue an interrupted run from its last checkpoint, with its own config.toml")
+    p.add_argument("--init", metavar="BUNDLE", type=Path,
+                   help="start the encoder from an exported bundle (same contrasts, patch and architecture), "
+                        "e.g. to fine-tune a shared encoder on this site's controls (same as --set train.init=...)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
 
     p = _add(sub, "export", "bundle a finished run's encoder as one .safetensors file",
@@ -92,6 +129,42 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--allow-grid-mismatch", action="store_true",
                    help="embed images whose grid differs from the encoder's (the differences go into the sidecar)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
+
+    p = _add(sub, "score", "per-voxel novelty scoring: fit on a store's controls, apply to a case (research use only)",
+             "twinpatch score fit store/ --out scorer/ --scorer ocsvm --nu 0.5\n  twinpatch score apply scorer/ "
+             "--image T1w=t1.nii.gz --image FLAIR=flair.nii.gz --out case01/")
+    score = p.add_subparsers(dest="score_command", metavar="fit|apply", parser_class=_Parser)
+    score.required = True
+    f = _add(score, "fit", "fit a scorer's leave-one-out standardisation on the controls of an embedding store "
+             "(or of a manifest, embedded first with a bundle)",
+             "twinpatch score fit store/ --out scorer/\n  twinpatch score fit encoder.safetensors --controls "
+             "demo_data/manifest.csv --out scorer/")
+    f.add_argument("source", metavar="STORE_OR_BUNDLE", type=Path)
+    f.add_argument("--controls", metavar="MANIFEST", type=Path, help="with a bundle: the manifest to embed first "
+                   "(into OUT/store); its controls fit the scorer")
+    f.add_argument("--out", metavar="SCORER_DIR", type=Path, required=True)
+    f.add_argument("--scorer", choices=("ocsvm", "gaussian", "knn"), default="ocsvm",
+                   help="one-class SVM (default), Gaussian (Ledoit-Wolf), or k nearest controls")
+    f.add_argument("--nu", type=float, default=0.5, help="ocsvm: nu (default 0.5)")
+    f.add_argument("--gamma", default="scale", help="ocsvm: 'scale' (default), 'median' or a number")
+    f.add_argument("--k", type=int, default=5, help="knn: neighbours (default 5)")
+    f.add_argument("--quiet", action="store_true", help="no progress bars")
+    a = _add(score, "apply", "score one case: standardised score map, ranked clusters, figures",
+             "twinpatch score apply scorer/ --image T1w=t1.nii.gz --image FLAIR=flair.nii.gz --out case01/ "
+             "--top-fraction 0.01")
+    a.add_argument("scorer_dir", metavar="SCORER_DIR", type=Path)
+    a.add_argument("--image", metavar="NAME=PATH", action="append", required=True, help="one contrast (repeat)")
+    a.add_argument("--mask", metavar="PATH", type=Path, help="the case's brain mask (default: derived)")
+    a.add_argument("--out", metavar="DIR", type=Path, required=True)
+    cut = a.add_mutually_exclusive_group()
+    cut.add_argument("--threshold", type=float, metavar="Z", help="keep voxels with standardised score >= Z")
+    cut.add_argument("--top-fraction", type=float, metavar="F", help="keep the top F of the voxels (default 0.01)")
+    a.add_argument("--connectivity", type=int, choices=(6, 18, 26), default=26)
+    a.add_argument("--min-size-mm3", type=float, default=0.0, help="drop smaller clusters (default 0)")
+    a.add_argument("--top-k", type=int, default=15, help="clusters kept in the table (default 15)")
+    a.add_argument("--name", default="case", help="subject name for titles and the summary")
+    a.add_argument("--allow-grid-mismatch", action="store_true")
+    a.add_argument("--quiet", action="store_true", help="no progress bars")
     return parser
 
 
@@ -115,17 +188,69 @@ def _cmd_synth(args) -> None:
     print(f"wrote synthetic cohort: {manifest}")
 
 
+def _cmd_prepare(args) -> None:
+    from .cache import prepare
+
+    bids = None
+    if args.bids is not None:
+        if not args.space or not args.contrasts:
+            raise InputError("--bids needs --space LABEL and --contrasts T1w,FLAIR (the image suffixes)")
+        from .bids import BidsQuery
+
+        split = lambda text: tuple(x.strip() for x in text.split(",") if x.strip())  # noqa: E731
+        bids = BidsQuery(args.bids, args.space, split(args.contrasts), session=args.session,
+                         participants=args.participants, group_column=args.group_column,
+                         control_values=split(args.control_values), case_values=split(args.case_values))
+    elif args.space or args.contrasts or args.session:
+        raise InputError("--space, --contrasts and --session go with --bids")
+    res = prepare(args.manifest, bids=bids, out=args.out, normalisation=args.normalisation, jobs=args.jobs,
+                  exclude_flagged=args.exclude_flagged, qc_threshold=args.qc_threshold, progress=not args.quiet)
+    print(f"cache {res.cache}: {res.reason}; {len(res.subjects)} subjects")
+    if res.flagged:
+        print(f"quality control flagged: {', '.join(res.flagged)} (see {res.cache}/qc.csv and qc.png)")
+    if res.excluded:
+        print(f"excluded: {', '.join(res.excluded)}")
+    if res.skipped:
+        print(f"skipped {len(res.skipped)} BIDS files or subjects (see {res.cache}/skipped.csv)")
+
+
+def _cmd_qc(args) -> None:
+    from .qc import qc_cache
+
+    report = qc_cache(args.cache, threshold=args.threshold, write_montage=not args.no_montage,
+                      progress=not args.quiet)
+    n = len({r.subject for r in report.rows})
+    flagged = ", ".join(report.flagged) or "none"
+    print(f"{n} subjects checked; flagged (robust z < -{report.threshold:g}): {flagged}; wrote {args.cache}/qc.csv")
+
+
 def _cmd_train(args) -> None:
     from .config import load_config
     from .jobs import train_job
 
     overrides = list(args.overrides)
-    if args.cohort:
-        overrides.append(f'cohort.manifest="{Path(args.cohort).as_posix()}"')
-    cfg = load_config(args.config, overrides)
-    demo = args.config is None and args.out is None
-    run_dir = args.out or Path("runs") / (args.config.stem if args.config else "demo")
-    out = train_job(cfg, run_dir, overwrite=args.overwrite or demo, progress=not args.quiet)
+    if args.resume is not None:
+        given = [flag for flag, v in (("CONFIG", args.config), ("--cohort", args.cohort), ("--out", args.out),
+                                      ("--set", overrides), ("--overwrite", args.overwrite), ("--init", args.init)) if v]
+        if given:
+            raise InputError(f"--resume {args.resume}: {given[0]} cannot be combined with --resume (the run continues "
+                             "with its own config.toml); drop it, or start a new run with --out")
+        if not (args.resume / "config.toml").is_file():
+            raise InputError(f"--resume {args.resume}: config.toml is missing, so this is not a twinpatch run; "
+                             "pass the RUN_DIR of a run started with `twinpatch train --out RUN_DIR`")
+        cfg = load_config(args.resume / "config.toml")
+        out = train_job(cfg, args.resume, progress=not args.quiet, resume=True)
+    else:
+        if args.cohort:
+            overrides.append(f'cohort.manifest="{Path(args.cohort).as_posix()}"')
+        if args.init:
+            overrides.append(f'train.init="{Path(args.init).as_posix()}"')
+        cfg = load_config(args.config, overrides)
+        demo = args.config is None and args.out is None
+        run_dir = args.out or Path("runs") / (args.config.stem if args.config else "demo")
+        out = train_job(cfg, run_dir, overwrite=args.overwrite or demo, progress=not args.quiet)
+    if out["bundle"] is None:  # a non-zero rank under torchrun: rank 0 reports
+        return
     r = out["result"]
     v = r.final
     print(f"\ndone in {out['seconds']:.0f} s ({r.pairs_per_second:.0f} training pairs/s)")
@@ -137,7 +262,9 @@ def _cmd_train(args) -> None:
     print(f"  TensorBoard     tensorboard --logdir {out['tensorboard']}")
     print(f"validation: reconstruction {v['reconstruction']:.4f}; centred cosine co-located "
           f"{v['cos_colocated']:.3f} vs random {v['cos_random']:.3f}; effective rank {v['effective_rank']:.1f} "
-          f"of {cfg.model.dim}")
+          f"of {cfg.model.dim}; co-location retrieval {v.get('retrieval', float('nan')):.2f}")
+    if r.stopped_early:
+        print(f"stopped early after {r.steps} of {cfg.train.steps} steps (train.early_stop={cfg.train.early_stop})")
     print(RESEARCH_NOTE)
 
 
@@ -199,8 +326,46 @@ def _cmd_embed(args) -> None:
     print(RESEARCH_NOTE)
 
 
-COMMANDS = {"synth": _cmd_synth, "train": _cmd_train, "export": _cmd_export, "inspect": _cmd_inspect,
-            "embed": _cmd_embed}
+def _cmd_score(args) -> None:
+    from .scoring import score_apply, score_fit
+
+    progress = not args.quiet
+    if args.score_command == "fit":
+        params = {"ocsvm": {"nu": args.nu, "gamma": _gamma(args.gamma)}, "gaussian": {}, "knn": {"k": args.k}}
+        store, bundle = args.source, None
+        if args.source.suffix == ".safetensors":
+            if args.controls is None:
+                raise InputError(f"{args.source} is a bundle: pass --controls MANIFEST to embed the controls first")
+            from .jobs import embed_store
+
+            bundle, store = args.source, args.out / "store"
+            embed_store(bundle, args.controls, store, progress=progress)
+        elif args.controls is not None:
+            raise InputError("--controls goes with a bundle; a store already holds its controls")
+        out = score_fit(store, args.out, scorer=args.scorer, params=params[args.scorer], bundle=bundle,
+                        progress=progress)
+        print(f"wrote scorer {out} ({args.scorer}) from store {store}")
+    else:
+        summary = score_apply(args.scorer_dir, _parse_images(args.image), args.out, mask=args.mask,
+                              value=args.threshold, top_fraction=args.top_fraction, connectivity=args.connectivity,
+                              min_size_mm3=args.min_size_mm3, top_k=args.top_k, name=args.name,
+                              allow_grid_mismatch=args.allow_grid_mismatch, progress=progress)
+        print(f"{summary['n_clusters']} clusters; wrote {args.out}/score.nii.gz, clusters.nii.gz, clusters.csv, "
+              f"{len(summary['figures'])} figures")
+    print(RESEARCH_NOTE)
+
+
+def _gamma(text: str):
+    if text in ("scale", "median"):
+        return text
+    try:
+        return float(text)
+    except ValueError:
+        raise InputError(f"--gamma {text!r}: use 'scale', 'median' or a positive number") from None
+
+
+COMMANDS = {"synth": _cmd_synth, "prepare": _cmd_prepare, "qc": _cmd_qc, "train": _cmd_train, "export": _cmd_export, "inspect": _cmd_inspect,
+            "embed": _cmd_embed, "score": _cmd_score}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -1,18 +1,16 @@
-"""Cohort loading and validation: manifest, NIfTI images, grid checks, masks, normalisation.
+"""Cohort loading and validation: NIfTI images, grid checks, masks, normalisation.
 
-A manifest is a CSV file with columns ``subject``, ``role`` (``control`` or ``case``), one column
-per contrast (the column name is the contrast name; contrast order = column order) and optional
-``mask`` and ``lesion`` columns (cells may be empty). Paths are relative to the manifest's folder;
-absolute paths are accepted. Every scan must already be on one template grid (same shape and
-affine), skull-stripped, bias-corrected and co-registered across contrasts.
+The manifest (:mod:`embed.manifest`, re-exported here) lists the scans. Every scan must already be
+on one template grid (same shape and affine), skull-stripped, bias-corrected and co-registered
+across contrasts.
 
-The cohort is held in RAM as float32; :func:`load_subject` loads one subject at a time so a
-memory-mapped cache can replace the in-RAM stack later without touching the per-subject code.
+:func:`load_cohort` holds the cohort in RAM as float32 and stops at the first problem; for a large
+cohort use :func:`embed.cache.prepare` (every problem reported at once, arrays memory-mapped from
+disk) and :func:`embed.cache.load_cache`. Normalisation methods live in :mod:`embed.normalise`.
 """
 
 from __future__ import annotations
 
-import csv
 import pathlib
 import zlib
 from dataclasses import dataclass
@@ -22,7 +20,9 @@ import numpy as np
 from scipy import ndimage
 from tqdm import tqdm
 
+from . import normalise as _norm
 from .errors import CohortError, ConfigError, InputError
+from .manifest import RESERVED_COLUMNS, ROLES, ManifestRow, Problem, read_manifest  # noqa: F401 (re-exported)
 
 # Two affines are "the same grid" when every element differs by at most this much (absolute;
 # mm for the translation column, mm per voxel for the 3x3 part). NIfTI-1 stores the sform rows
@@ -31,22 +31,9 @@ from .errors import CohortError, ConfigError, InputError
 # above that rounding and far below any real misregistration (voxels are ~1 mm).
 AFFINE_ATOL_MM = 1e-3
 
-ROLES = ("control", "case")
-RESERVED_COLUMNS = ("subject", "role", "mask", "lesion")
-NORMALISATIONS = ("zscore",)
+NORMALISATIONS = _norm.METHODS
 PLANE_CODES = {"axial": ("I", "S"), "coronal": ("A", "P"), "sagittal": ("L", "R")}
 _GRID_FIX = "resample every scan onto the template grid first"
-
-
-@dataclass(frozen=True)
-class ManifestRow:
-    """One manifest line; ``images`` maps contrast -> absolute path, in contrast order."""
-
-    subject: str
-    role: str
-    images: dict[str, pathlib.Path]
-    mask: pathlib.Path | None
-    lesion: pathlib.Path | None
 
 
 @dataclass(frozen=True, eq=False)
@@ -77,7 +64,12 @@ class Cohort:
     mask: (X, Y, Z) bool, the cohort mask: voxels inside the masks of at least half of the
     controls (2 * count >= number of controls).  lesions: subject -> (X, Y, Z) bool, only where
     given.  affine: (4, 4) float64.  voxel_size: header zooms of the first three axes (mm).
-    stats: subject -> contrast -> {"mean", "std"} of raw intensities inside that subject's mask.
+    stats: subject -> contrast -> {"mean", "std"} of raw intensities inside that subject's mask
+    (plus "landmarks", its raw percentiles, with ``histogram`` normalisation).
+    normalisation_params: the parameters that reproduce the normalisation on a new subject
+    (see :mod:`embed.normalise`; put them in a bundle card). cache: the cohort cache folder when
+    the cohort was read by :func:`embed.cache.load_cache` (then ``data`` and ``masks`` are
+    read-only ``np.memmap`` arrays), else None.
     """
 
     subjects: tuple[str, ...]
@@ -93,77 +85,14 @@ class Cohort:
     stats: dict[str, dict[str, dict[str, float]]]
     normalisation: str
     manifest: pathlib.Path
+    normalisation_params: dict | None = None
+    cache: pathlib.Path | None = None
 
     def indices(self, role: str) -> np.ndarray:
         """(K,) int64 indices of the subjects with ``role``, in manifest order."""
         if role not in ROLES:
             raise InputError(f"Cohort.indices: unknown role {role!r}; use one of {', '.join(ROLES)}")
         return np.array([i for i, r in enumerate(self.roles) if r == role], dtype=np.int64)
-
-
-# ---------------------------------------------------------------------------------------------
-# manifest
-
-
-def read_manifest(path) -> tuple[list[ManifestRow], tuple[str, ...]]:
-    """Read and check a manifest; return (rows, contrast names in column order)."""
-    path = pathlib.Path(path).expanduser()
-    if not path.is_file():
-        raise CohortError(f"manifest {path} not found; give the path of an existing manifest.csv")
-    with open(path, newline="", encoding="utf-8-sig") as f:
-        lines = [(n, [c.strip() for c in cells]) for n, cells in enumerate(csv.reader(f), 1)]
-    lines = [(n, cells) for n, cells in lines if any(cells)]
-    if not lines:
-        raise CohortError(f"manifest {path} is empty; write a header line 'subject,role,<contrast>...' and one line per subject")
-    header_line, header = lines[0]
-    found = ", ".join(header)
-    for i, name in enumerate(header, 1):
-        if not name:
-            raise CohortError(f"manifest {path}: column {i} of the header has no name (found columns: {found}); name it or delete it")
-    dups = sorted({h for h in header if header.count(h) > 1})
-    if dups:
-        raise CohortError(f"manifest {path}: column {dups[0]!r} appears more than once (found columns: {found}); keep one")
-    for required in ("subject", "role"):
-        if required not in header:
-            raise CohortError(f"manifest {path} has no {required!r} column (found columns: {found}); add it to the header line")
-    contrasts = tuple(h for h in header if h not in RESERVED_COLUMNS)
-    if not contrasts:
-        raise CohortError(f"manifest {path} has no contrast column (found columns: {found}); add one column per contrast, e.g. 'T1w'")
-    base = path.resolve().parent
-
-    def resolve(cell: str) -> pathlib.Path:
-        p = pathlib.Path(cell).expanduser()
-        return p if p.is_absolute() else base / p
-
-    rows: list[ManifestRow] = []
-    seen: dict[str, int] = {}
-    for n, cells in lines[1:]:
-        where = f"manifest {path}, line {n}"
-        if len(cells) != len(header):
-            raise CohortError(f"{where}: {len(cells)} cells but the header has {len(header)} columns; give every line one cell per column (empty cells allowed for mask/lesion)")
-        cell = dict(zip(header, cells))
-        subject, role = cell["subject"], cell["role"]
-        if not subject:
-            raise CohortError(f"{where}: empty 'subject' cell; give every line a subject id")
-        where = f"{where} (subject {subject})"
-        if subject in seen:
-            raise CohortError(f"{where}: subject id {subject!r} already used on line {seen[subject]}; make subject ids unique")
-        seen[subject] = n
-        if role not in ROLES:
-            raise CohortError(f"{where}: unknown role {role!r} in column 'role'; use 'control' or 'case'")
-        images = {}
-        for c in contrasts:
-            if not cell[c]:
-                raise CohortError(f"{where}: empty cell in contrast column {c!r}; give the path of the {c} image")
-            images[c] = resolve(cell[c])
-        rows.append(ManifestRow(
-            subject=subject, role=role, images=images,
-            mask=resolve(cell["mask"]) if cell.get("mask") else None,
-            lesion=resolve(cell["lesion"]) if cell.get("lesion") else None,
-        ))
-    if not rows:
-        raise CohortError(f"manifest {path} has a header line but no subjects; add one line per subject")
-    return rows, contrasts
 
 
 # ---------------------------------------------------------------------------------------------
@@ -219,29 +148,24 @@ def derive_mask(data: np.ndarray, *, what: str = "image") -> np.ndarray:
     return ndimage.binary_fill_holes(labels == int(np.argmax(sizes)) + 1)
 
 
-def _check_method(method: str) -> None:
-    if method not in NORMALISATIONS:
-        raise ConfigError(f"cohort.normalisation: unknown method {method!r}; use one of {', '.join(NORMALISATIONS)}")
+def _check_method(method) -> None:
+    if isinstance(method, dict):
+        return  # stored parameters: checked by normalise.check_params where they are used
+    _norm.check_method(method)
 
 
 def normalise(vol: np.ndarray, mask: np.ndarray, method: str = "zscore", *, what: str = "image") -> tuple[np.ndarray, dict[str, float]]:
-    """Normalise one volume inside a mask.
+    """Normalise one volume inside a mask (z-score; histogram standardisation needs learned
+    landmarks: use :func:`embed.normalise.normalise_with`).
 
     vol: (X, Y, Z) float; mask: (X, Y, Z) bool. Returns ((X, Y, Z) float32 with 0 outside the
     mask, {"mean", "std"} of the raw voxels inside the mask, float64 accumulation, ddof=0).
     """
     _check_method(method)
-    if vol.shape != mask.shape:
-        raise CohortError(f"{what}: volume shape {vol.shape} differs from mask shape {mask.shape}; {_GRID_FIX}")
-    inside = vol[mask].astype(np.float64)
-    if inside.size == 0:
-        raise CohortError(f"{what}: the mask is empty; give a mask with at least one brain voxel")
-    mean, std = float(inside.mean()), float(inside.std())
-    if std == 0.0:
-        raise CohortError(f"{what}: intensity is constant ({mean:g}) inside the mask (std 0), cannot z-score; check that the file holds a real scan")
-    out = np.zeros(vol.shape, dtype=np.float32)
-    out[mask] = ((inside - mean) / std).astype(np.float32)
-    return out, {"mean": mean, "std": std}
+    if method != "zscore":
+        raise ConfigError(f"cohort.normalisation: method {method!r} needs landmarks learned on the controls; "
+                          "use load_cohort / prepare, or normalise_with(vol, mask, params, contrast) with stored parameters")
+    return _norm.zscore(vol, mask, what=what)
 
 
 def _codes(affine: np.ndarray) -> str:
@@ -264,23 +188,20 @@ def _check_grid(img, path, what: str, ref_affine: np.ndarray, ref_shape: tuple, 
         raise CohortError(f"{what}: {path} has an affine that differs from {ref_name} by up to {diff:.4g} (tolerance AFFINE_ATOL_MM={AFFINE_ATOL_MM:g}{orient}): expected {_fmt(ref_affine)}, found {_fmt(img.affine)}; {_GRID_FIX}")
 
 
-def load_subject(images: dict, *, subject: str = "case", role: str = "case", mask=None, lesion=None,
-                 normalisation: str = "zscore", reference: tuple | None = None,
-                 reference_name: str = "the reference grid") -> Subject:
-    """Load, check and normalise one subject.
+def read_subject(images: dict, *, subject: str = "case", mask=None, lesion=None, reference: tuple | None = None,
+                 reference_name: str = "the reference grid") -> tuple:
+    """Load and check one subject's raw images, without normalising.
 
-    images: contrast -> path, in contrast order. reference: (affine (4, 4), shape (X, Y, Z)) that
-    every image must match; without it the first contrast sets the grid. mask: path (nonzero =
-    brain) or None (derive_mask). lesion: path (nonzero = lesion) or None.
+    Returns (raw: (C, X, Y, Z) float32, mask: (X, Y, Z) bool, lesion: (X, Y, Z) bool or None,
+    affine: (4, 4) float64, header of the first contrast). See :func:`load_subject`.
     """
     if not images:
         raise CohortError(f"subject {subject}: no images given; give at least one contrast")
-    _check_method(normalisation)  # fail before reading any file
     ref = None
     if reference is not None:
         ref = (np.asarray(reference[0], dtype=np.float64), tuple(int(s) for s in reference[1]))
-    raw, header = [], None
-    for contrast, path in images.items():
+    raw, header = None, None
+    for c, (contrast, path) in enumerate(images.items()):
         what = f"{contrast} image of subject {subject}"
         img = load_image(path, what)
         if ref is None:
@@ -288,7 +209,9 @@ def load_subject(images: dict, *, subject: str = "case", role: str = "case", mas
         _check_grid(img, path, what, *ref, reference_name)
         if header is None:
             header, affine = img.header.copy(), img.affine.astype(np.float64)
-        raw.append(img.get_fdata(dtype=np.float32))  # cached by load_image: no second read
+            raw = np.empty((len(images),) + ref[1], dtype=np.float32)
+        raw[c] = img.get_fdata(dtype=np.float32)  # cached by load_image: no second read
+        del img
 
     def read_label(path, kind: str) -> np.ndarray:
         what = f"{kind} of subject {subject}"
@@ -301,22 +224,63 @@ def load_subject(images: dict, *, subject: str = "case", role: str = "case", mas
         if not mask_arr.any():
             raise CohortError(f"mask of subject {subject}: {mask} has no nonzero voxel; give a brain mask (nonzero = brain) or leave the cell empty to derive one")
     else:
-        mask_arr = derive_mask(np.stack(raw), what=f"subject {subject}")
+        mask_arr = derive_mask(raw, what=f"subject {subject}")
     lesion_arr = read_label(lesion, "lesion mask") if lesion is not None else None
+    return raw, mask_arr, lesion_arr, affine, header
 
-    data = np.empty((len(raw),) + ref[1], dtype=np.float32)
+
+def load_subject(images: dict, *, subject: str = "case", role: str = "case", mask=None, lesion=None,
+                 normalisation: str | dict = "zscore", reference: tuple | None = None,
+                 reference_name: str = "the reference grid") -> Subject:
+    """Load, check and normalise one subject.
+
+    images: contrast -> path, in contrast order. reference: (affine (4, 4), shape (X, Y, Z)) that
+    every image must match; without it the first contrast sets the grid. mask: path (nonzero =
+    brain) or None (derive_mask). lesion: path (nonzero = lesion) or None. normalisation:
+    "zscore", or stored parameters (a dict, see :mod:`embed.normalise`, e.g. a bundle card's
+    ``normalisation`` or ``Cohort.normalisation_params``) to normalise exactly as the cohort was.
+    """
+    if not images:
+        raise CohortError(f"subject {subject}: no images given; give at least one contrast")
+    _check_method(normalisation)  # fail before reading any file
+    params = normalisation if isinstance(normalisation, dict) else None
+    if params is None and normalisation != "zscore":
+        raise ConfigError(f"cohort.normalisation: method {normalisation!r} needs landmarks learned on the controls; "
+                          "pass the stored parameters (a cache's or bundle card's 'normalisation' dict) instead of the name")
+    if params is not None:
+        _norm.check_params(params, tuple(images), f"subject {subject}: normalisation")
+    raw, mask_arr, lesion_arr, affine, header = read_subject(
+        images, subject=subject, mask=mask, lesion=lesion, reference=reference, reference_name=reference_name)
     stats = {}
-    for c, (contrast, vol) in enumerate(zip(images, raw)):
-        data[c], stats[contrast] = normalise(vol, mask_arr, normalisation,
-                                             what=f"{contrast} image of subject {subject} ({images[contrast]})")
-    return Subject(subject=subject, role=role, data=data, mask=mask_arr, lesion=lesion_arr,
+    for c, contrast in enumerate(images):
+        what = f"{contrast} image of subject {subject} ({images[contrast]})"
+        if params is None:
+            raw[c], stats[contrast] = _norm.zscore(raw[c], mask_arr, what=what)
+        else:
+            raw[c], stats[contrast] = _norm.normalise_with(raw[c], mask_arr, params, contrast, what=what)
+    return Subject(subject=subject, role=role, data=raw, mask=mask_arr, lesion=lesion_arr,
                    affine=affine, header=header, stats=stats)
 
 
+def cohort_mask(counts: np.ndarray, n_controls: int, where: str) -> np.ndarray:
+    """The cohort mask from per-voxel counts of control masks: (X, Y, Z) int -> (X, Y, Z) bool.
+
+    Rule: voxels inside the masks of at least half of the controls (2 * count >= n_controls).
+    """
+    mask = 2 * counts.astype(np.int64) >= n_controls
+    if not mask.any():
+        raise CohortError(f"{where}: the masks of the {n_controls} controls share no voxel, so the cohort mask (voxels in at least half of the control masks) is empty; check the masks are on the template grid")
+    return mask
+
+
 def load_cohort(manifest, *, normalisation: str = "zscore", min_controls: int = 3, progress: bool = True) -> Cohort:
-    """Read a manifest and load every subject onto the grid of the first subject."""
+    """Read a manifest and load every subject onto the grid of the first subject (held in RAM).
+
+    normalisation: "zscore" or "histogram" (landmarks learned on the manifest's controls).
+    """
     if min_controls < 1:
         raise ConfigError(f"cohort.min_controls: got {min_controls}, need at least 1; set it to 3 or more")
+    _norm.check_method(normalisation)
     rows, contrasts = read_manifest(manifest)
     manifest = pathlib.Path(manifest).expanduser().resolve()
     n_controls = sum(r.role == "control" for r in rows)
@@ -324,30 +288,44 @@ def load_cohort(manifest, *, normalisation: str = "zscore", min_controls: int = 
         raise CohortError(f"manifest {manifest}: {n_controls} controls found, at least {min_controls} needed; add healthy controls with role 'control'")
     data = masks = None
     reference, reference_name = None, "the reference grid"
-    lesions, stats = {}, {}
+    lesions, marks = {}, {}
     for s, row in enumerate(tqdm(rows, desc="load cohort", unit="subject", disable=not progress)):
-        sub = load_subject(row.images, subject=row.subject, role=row.role, mask=row.mask, lesion=row.lesion,
-                           normalisation=normalisation, reference=reference, reference_name=reference_name)
+        raw, mask, lesion, affine, header = read_subject(
+            row.images, subject=row.subject, mask=row.mask, lesion=row.lesion, reference=reference,
+            reference_name=reference_name)
         if data is None:
-            first = sub
-            reference = (sub.affine, sub.mask.shape)
-            reference_name = f"the grid of subject {sub.subject} (first in the manifest)"
-            data = np.empty((len(rows),) + sub.data.shape, dtype=np.float32)
-            masks = np.empty((len(rows),) + sub.mask.shape, dtype=bool)
-        data[s], masks[s] = sub.data, sub.mask
-        stats[row.subject] = sub.stats
-        if sub.lesion is not None:
-            lesions[row.subject] = sub.lesion
+            first_affine, first_header = affine, header
+            reference = (affine, mask.shape)
+            reference_name = f"the grid of subject {row.subject} (first in the manifest)"
+            data = np.empty((len(rows),) + raw.shape, dtype=np.float32)
+            masks = np.empty((len(rows),) + mask.shape, dtype=bool)
+        data[s], masks[s] = raw, mask
+        if lesion is not None:
+            lesions[row.subject] = lesion
+        if normalisation == "histogram":
+            for c, contrast in enumerate(contrasts):
+                what = f"{contrast} image of subject {row.subject} ({row.images[contrast]})"
+                marks[row.subject, contrast] = _norm.landmarks(raw[c], mask, what=what)
+                _norm.check_increasing(marks[row.subject, contrast], what)
     roles = tuple(r.role for r in rows)
     controls = np.array([r == "control" for r in roles])
-    cohort_mask = 2 * masks[controls].sum(axis=0, dtype=np.int64) >= n_controls
-    if not cohort_mask.any():
-        raise CohortError(f"manifest {manifest}: the masks of the {n_controls} controls share no voxel, so the cohort mask (voxels in at least half of the control masks) is empty; check the masks are on the template grid")
+    mask = cohort_mask(masks[controls].sum(axis=0, dtype=np.int64), n_controls, f"manifest {manifest}")
+    params = _norm.zscore_params()
+    if normalisation == "histogram":
+        standard = {c: _norm.learn_standard(np.stack([marks[r.subject, c] for r in rows if r.role == "control"]))
+                    for c in contrasts}
+        params = _norm.histogram_params(standard, n_controls)
+    stats = {}
+    for s, row in enumerate(rows):
+        stats[row.subject] = {}
+        for c, contrast in enumerate(contrasts):
+            what = f"{contrast} image of subject {row.subject} ({row.images[contrast]})"
+            data[s, c], stats[row.subject][contrast] = _norm.normalise_with(data[s, c], masks[s], params, contrast, what=what)
     return Cohort(
         subjects=tuple(r.subject for r in rows), roles=roles, contrasts=contrasts, data=data,
-        masks=masks, mask=cohort_mask, lesions=lesions, affine=first.affine, header=first.header,
-        voxel_size=tuple(float(z) for z in first.header.get_zooms()[:3]), stats=stats,
-        normalisation=normalisation, manifest=manifest,
+        masks=masks, mask=mask, lesions=lesions, affine=first_affine, header=first_header,
+        voxel_size=tuple(float(z) for z in first_header.get_zooms()[:3]), stats=stats,
+        normalisation=normalisation, manifest=manifest, normalisation_params=params,
     )
 
 

@@ -20,15 +20,16 @@ from typing import Any
 from .errors import ConfigError
 
 PLANES = ("axial", "coronal", "sagittal")
-SCHEDULES = ("constant", "ramp")
+SCHEDULES = ("constant", "ramp", "cosine_ramp", "step")
 RECONSTRUCTIONS = ("mse", "l1")
-NORMALISATIONS = ("zscore",)
+NORMALISATIONS = ("zscore", "histogram")
 PRECISIONS = ("fp32", "bf16")
+EARLY_STOP = ("none", "total", "reconstruction", "retrieval", "cos_gap")
 
 
 @dataclass(frozen=True)
 class CohortConfig:
-    manifest: str = "demo_data/manifest.csv"
+    manifest: str = "demo_data/manifest.csv"  # a manifest.csv, or a cache folder written by `twinpatch prepare`
     normalisation: str = "zscore"
     val_controls: int = 3  # controls held out of training, for validation pairs
 
@@ -48,10 +49,13 @@ class ModelConfig:
 @dataclass(frozen=True)
 class LossConfig:
     agreement_weight: float = 0.5  # final weight w of (1 - cosine); 0 = plain autoencoder
-    schedule: str = "ramp"  # "constant": w from step 0; "ramp": linear from 0 to w
-    ramp_fraction: float = 0.5  # fraction of the steps the ramp takes
+    schedule: str = "ramp"  # constant | ramp (linear 0 -> w) | cosine_ramp | step (0, then w)
+    ramp_fraction: float = 0.5  # fraction of the steps the ramp takes (step: where w switches on)
     centred: bool = False  # agreement on batch-centred embeddings
+    batch_norm: bool = False  # agreement after a non-affine batch normalisation (implies centring)
     reconstruction: str = "mse"
+    reconstruction_weight: float = 1.0  # 0 = agreement only (shows collapse)
+    mmd_weight: float = 0.0  # Wasserstein-autoencoder latent regulariser: MMD to a standard Gaussian
 
 
 @dataclass(frozen=True)
@@ -63,7 +67,14 @@ class TrainConfig:
     val_every: int = 100
     val_pairs: int = 1024
     threads: int = 0  # torch intra-op threads; 0 = all cores
-    precision: str = "fp32"
+    precision: str = "bf16"  # bf16: bfloat16 matrix products (fast path); fp32: float32 convolutions
+    checkpoint_every: int = 250  # steps between checkpoints (also written at the end and on Ctrl-C)
+    deterministic: bool = False  # torch.use_deterministic_algorithms(True)
+    early_stop: str = "none"  # validation metric to stop on: none | total | reconstruction | retrieval | cos_gap
+    patience: int = 5  # validations without improvement before early stopping
+    retrieval_voxels: int = 256  # held-out voxels for the co-location retrieval score
+    projector_points: int = 512  # validation embeddings written for the TensorBoard projector; 0 = none
+    init: str = ""  # encoder bundle to start from (--init BUNDLE); "" = random initialisation
 
 
 @dataclass(frozen=True)
@@ -93,6 +104,8 @@ _RULES: dict[str, tuple[Any, str]] = {
     "loss.schedule": (lambda v: v in SCHEDULES, f"one of {SCHEDULES}"),
     "loss.ramp_fraction": (lambda v: 0 < v <= 1, "a number in (0, 1]"),
     "loss.reconstruction": (lambda v: v in RECONSTRUCTIONS, f"one of {RECONSTRUCTIONS}"),
+    "loss.reconstruction_weight": (lambda v: v >= 0, "a number >= 0"),
+    "loss.mmd_weight": (lambda v: v >= 0, "a number >= 0"),
     "train.steps": (lambda v: v >= 1, "an integer >= 1"),
     "train.batch_size": (lambda v: v >= 2, "an integer >= 2 (random pairs need two patches)"),
     "train.lr": (lambda v: v > 0, "a number > 0"),
@@ -101,6 +114,11 @@ _RULES: dict[str, tuple[Any, str]] = {
     "train.val_pairs": (lambda v: v >= 2, "an integer >= 2"),
     "train.threads": (lambda v: v >= 0, "an integer >= 0 (0 = all cores)"),
     "train.precision": (lambda v: v in PRECISIONS, f"one of {PRECISIONS}"),
+    "train.checkpoint_every": (lambda v: v >= 1, "an integer >= 1"),
+    "train.early_stop": (lambda v: v in EARLY_STOP, f"one of {EARLY_STOP}"),
+    "train.patience": (lambda v: v >= 1, "an integer >= 1"),
+    "train.retrieval_voxels": (lambda v: v >= 1, "an integer >= 1"),
+    "train.projector_points": (lambda v: v >= 0, "an integer >= 0 (0 = none)"),
 }
 
 

@@ -38,6 +38,20 @@ def ensure_demo_cohort(manifest: Path, log: Callable[[str], None], progress: boo
     make_cohort(manifest.parent, progress=progress)
 
 
+def load_any_cohort(source: Path, normalisation: str, progress: bool = True):
+    """A cohort from a prepared cache folder (read from disk, memory-mapped) or a manifest.csv."""
+    if source.is_dir():
+        from .cache import load_cache
+
+        cohort = load_cache(source)
+        if cohort.normalisation != normalisation:
+            raise InputError(f"cohort cache {source} was prepared with normalisation {cohort.normalisation!r} but "
+                             f"cohort.normalisation is {normalisation!r}; set --set cohort.normalisation="
+                             f"{cohort.normalisation} or prepare the cache again")
+        return cohort
+    return load_cohort(source, normalisation=normalisation, progress=progress)
+
+
 def check_run_dir(run_dir: Path, overwrite: bool) -> None:
     """Refuse to mix two runs in one folder unless ``overwrite``; never replace a folder that is not a run."""
     if not run_dir.exists() or not any(run_dir.iterdir()):
@@ -51,24 +65,35 @@ def check_run_dir(run_dir: Path, overwrite: bool) -> None:
 
 
 def train_job(cfg: Config, run_dir: str | Path, *, overwrite: bool = False, progress: bool = True,
-              log: Callable[[str], None] = print) -> dict:
+              log: Callable[[str], None] = print, resume: bool = False) -> dict:
     """Train, export ``RUN_DIR/encoder.safetensors`` and (``export.example_map``) embed one case.
 
-    Returns a dict of output paths and summary numbers.
+    ``resume``: continue the run in ``run_dir`` from its last checkpoint (``cfg`` is then the
+    run's own ``config.toml``). Under torchrun only rank 0 exports and embeds. Returns a dict of
+    output paths and summary numbers (``bundle`` and ``map`` are None on other ranks).
     """
+    from .fit import world_info
+
     t0 = time.perf_counter()
     run_dir = Path(run_dir)
     manifest = Path(cfg.cohort.manifest)
-    check_run_dir(run_dir, overwrite)
+    rank, _ = world_info()
+    if resume:
+        check_resumable(run_dir)
+    elif rank == 0:  # only rank 0 writes the run dir (other ranks could see it half made)
+        check_run_dir(run_dir, overwrite)
     ensure_demo_cohort(manifest, log, progress)
-    cohort = load_cohort(manifest, normalisation=cfg.cohort.normalisation, progress=progress)
+    cohort = load_any_cohort(manifest, cfg.cohort.normalisation, progress=progress and rank == 0)
     check_setup(cfg, cohort)
-    if run_dir.exists() and overwrite:
+    if run_dir.exists() and overwrite and not resume and rank == 0:
         shutil.rmtree(run_dir)
-    result = train(cfg, cohort, run_dir, progress=progress)
-    bundle = export_run(run_dir)
-    outputs = {"run_dir": run_dir, "bundle": bundle, "metrics": run_dir / "metrics.jsonl",
+    result = train(cfg, cohort, run_dir, progress=progress and rank == 0, resume=resume)
+    outputs = {"run_dir": run_dir, "bundle": None, "metrics": run_dir / "metrics.jsonl",
                "tensorboard": run_dir / "tb", "result": result, "map": None}
+    if rank != 0:
+        outputs["seconds"] = time.perf_counter() - t0
+        return outputs
+    bundle = outputs["bundle"] = export_run(run_dir)
     if cfg.export.example_map:
         cases = cohort.indices("case")
         pick = int(cases[0]) if len(cases) else int(cohort.indices("control")[-1])
@@ -80,6 +105,14 @@ def train_job(cfg: Config, run_dir: str | Path, *, overwrite: bool = False, prog
         outputs["map"] = _embed_and_write(encoder, subject, out, {"subject": name}, progress)
     outputs["seconds"] = time.perf_counter() - t0
     return outputs
+
+
+def check_resumable(run_dir: Path) -> None:
+    """Refuse ``--resume`` on a folder that is not a run with a checkpoint."""
+    for needed in ("config.toml", "checkpoints/last.pt"):
+        if not (run_dir / needed).is_file():
+            raise InputError(f"--resume {run_dir}: {needed} is missing, so this is not a resumable twinpatch run; "
+                             "pass the RUN_DIR of a run started with `twinpatch train --out RUN_DIR`")
 
 
 def export_run(run_dir: str | Path, out: str | Path | None = None) -> Path:
@@ -159,7 +192,7 @@ def embed_subject(bundle: str | Path, images: dict[str, Path], out: str | Path, 
         raise InputError(f"--image: the encoder needs contrasts {list(encoder.channel_names)}, got {list(names)}; "
                          f"add --image {missing[0]}=PATH")
     ordered = {c: Path(images[c]) for c in encoder.channel_names}
-    normalisation = encoder.card.get("normalisation", {}).get("method", "zscore")
+    normalisation = encoder.card.get("normalisation") or "zscore"
     extra_names = [n for n in names if n not in encoder.channel_names]
     if extra_names:
         raise InputError(f"--image {extra_names[0]}: the encoder has no contrast of that name; "
@@ -232,13 +265,14 @@ def embed_store(bundle: str | Path, manifest: str | Path, out: str | Path, *, sh
         if not m.any():
             raise InputError(f"the store mask is empty ({mask or 'controls common brain'}); check the masks")
         voxels = np.argwhere(m)
-    producer = {"bundle_sha256": encoder.card.get("weights_sha256"), "precision": precision,
+    producer = {"bundle_sha256": encoder.card.get("weights_sha256"), "bundle_path": str(Path(bundle).resolve()),
+                "precision": precision,
                 "mask": str(mask) if mask else "controls (majority)"}
     st.create(out, subjects=[r.subject for r in rows], roles=[r.role for r in rows], voxels=voxels,
               dim=encoder.dim, dtype=dtype, grid=grid, producer=producer)
     vmask = np.zeros(tuple(grid.get("shape", ())) or _first_shape(rows), bool)
     vmask[tuple(voxels.T)] = True
-    normalisation = encoder.card.get("normalisation", {}).get("method", "zscore")
+    normalisation = encoder.card.get("normalisation") or "zscore"
     mine = rows[index - 1::count]
     done = 0
     for row in tqdm(mine, desc=f"embed store {index}/{count}", unit="subject", disable=not progress):

@@ -13,6 +13,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
 
 from .errors import ConfigError
 
@@ -60,8 +61,31 @@ def check_patch_fits(shape: tuple[int, int, int], patch_size: int, axis: int) ->
 def gather_patches(data: np.ndarray, subjects: np.ndarray, centres: np.ndarray, patch_size: int, axis: int) -> np.ndarray:
     """Patches of ``data: (S, C, X, Y, Z)`` at ``centres: (N, 3)`` of ``subjects: (N,)``.
 
-    Returns ``(N, C, p, p) float32``; voxels outside the grid are zero.
+    Returns ``(N, C, p, p) float32``; voxels outside the grid are zero. Patches that lie inside
+    the grid are read from a sliding-window view of ``data`` (no copy of the volume, one gather);
+    the few that cross the border go through :func:`_gather_padded`.
     """
+    centres = np.asarray(centres, dtype=np.int64).reshape(-1, 3)
+    subjects = np.asarray(subjects, dtype=np.int64).reshape(-1)
+    half = patch_size // 2
+    plane = [i for i in range(3) if i != axis]
+    shape = data.shape[2:]
+    inner = np.ones(len(centres), dtype=bool)
+    for i in plane:
+        inner &= (centres[:, i] >= half) & (centres[:, i] < shape[i] - half)
+    out = np.empty((len(centres), data.shape[1], patch_size, patch_size), dtype=np.float32)
+    if inner.any():
+        win = sliding_window_view(data, (patch_size, patch_size), axis=(plane[0] + 2, plane[1] + 2))
+        c = centres[inner]
+        idx = [c[:, i] - (half if i != axis else 0) for i in range(3)]
+        out[inner] = win[subjects[inner], :, idx[0], idx[1], idx[2]]  # (n, C, p, p)
+    if not inner.all():
+        out[~inner] = _gather_padded(data, subjects[~inner], centres[~inner], patch_size, axis)
+    return out
+
+
+def _gather_padded(data: np.ndarray, subjects: np.ndarray, centres: np.ndarray, patch_size: int, axis: int) -> np.ndarray:
+    """:func:`gather_patches` by explicit index arrays, zero outside the grid (any centre)."""
     half = patch_size // 2
     offsets = np.arange(patch_size) - half
     plane = [i for i in range(3) if i != axis]
@@ -101,3 +125,36 @@ def sample_pairs(
         b=gather_patches(data, sb, centres, patch_size, axis),
         centres=centres, subject_a=sa, subject_b=sb,
     )
+
+
+@dataclass(frozen=True)
+class RetrievalSet:
+    """Patches for the co-location retrieval score.
+
+    ``query: (K, C, p, p)`` from subject A at K voxels; ``candidates: (K, R, C, p, p)`` from
+    subject B at every voxel of the ``(2r + 1)^3`` cube around each of them; ``true_index``: the
+    candidate at the query's own voxel; ``centres: (K, 3)``.
+    """
+
+    query: np.ndarray
+    candidates: np.ndarray
+    true_index: int
+    centres: np.ndarray
+
+
+def sample_retrieval(data: np.ndarray, subject_a: int, subject_b: int, voxels: np.ndarray, k: int, patch_size: int,
+                     axis: int, rng: np.random.Generator, radius: int = 1) -> RetrievalSet:
+    """Draw up to ``k`` voxels of ``voxels: (K, 3)`` whose cube of ``radius`` lies in the grid."""
+    shape = np.array(data.shape[2:])
+    keep = np.all((voxels >= radius) & (voxels < shape - radius), axis=1)
+    pool = voxels[keep]
+    assert len(pool) > 0, "no voxel with a full neighbourhood"
+    centres = pool[rng.choice(len(pool), size=min(k, len(pool)), replace=False)]
+    r = np.arange(-radius, radius + 1)
+    offsets = np.stack(np.meshgrid(r, r, r, indexing="ij"), axis=-1).reshape(-1, 3)
+    cand = (centres[:, None, :] + offsets[None]).reshape(-1, 3)
+    n_c = len(offsets)
+    query = gather_patches(data, np.full(len(centres), subject_a), centres, patch_size, axis)
+    candidates = gather_patches(data, np.full(len(cand), subject_b), cand, patch_size, axis)
+    candidates = candidates.reshape(len(centres), n_c, *candidates.shape[1:])
+    return RetrievalSet(query, candidates, int(np.flatnonzero((offsets == 0).all(axis=1))[0]), centres)

@@ -74,8 +74,11 @@ def create(path: str | Path, *, subjects: list[str], roles: list[str], voxels: n
     meta = path / "store.json"
     if meta.exists():
         old = read_description(path)
-        keys = ("subjects", "roles", "n_voxels", "dim", "dtype", "producer")
+        keys = ("subjects", "roles", "n_voxels", "dim", "dtype")
         changed = [k for k in keys if old.get(k) != desc[k]]
+        same = {k: v for k, v in desc["producer"].items() if k != "bundle_path"}  # a moved bundle is fine
+        if {k: v for k, v in old.get("producer", {}).items() if k != "bundle_path"} != same:
+            changed.append("producer (bundle, precision or mask)")
         if changed:
             raise InputError(f"store {path} already holds a store with other {', '.join(changed)}; "
                              "use a new --out folder (or delete that one)")
@@ -196,12 +199,16 @@ class Store:
         return len(self.voxels)
 
     def block(self, v0: int, v1: int, subjects: np.ndarray | None = None) -> np.ndarray:
-        """Embeddings of voxels ``[v0, v1)``: ``(S, v1 - v0, D) float32`` (one contiguous read)."""
+        """Embeddings of voxels ``[v0, v1)``: ``(S, v1 - v0, D) float32`` (one contiguous read).
+
+        Returned as a transposed view of a voxel-major ``(B, S, D)`` array: per-voxel scorers read
+        each voxel's controls contiguously.
+        """
         data = np.load(self.path / "embeddings.npy", mmap_mode="r")
-        part = np.asarray(data[v0:v1], dtype=np.float32)  # (B, S, D)
+        part = np.array(data[v0:v1], dtype=np.float32)  # (B, S, D), a copy in RAM
         if subjects is not None:
             part = part[:, subjects]
-        return np.ascontiguousarray(part.transpose(1, 0, 2))
+        return part.transpose(1, 0, 2)
 
     def indices(self, role: str) -> np.ndarray:
         return np.array([i for i, r in enumerate(self.roles) if r == role], dtype=np.int64)

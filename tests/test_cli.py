@@ -189,3 +189,16 @@ def test_inspect_and_onnx_export(tiny_run, tmp_path, capsys):
     data[-1] ^= 0x01
     bundle.write_bytes(bytes(data))
     _fails(["inspect", bundle], capsys, "checksum mismatch")
+
+
+def test_prepare_and_qc_commands(tiny_manifest, tmp_path, capsys):
+    cache = tmp_path / "cache"
+    assert main(["prepare", "--manifest", str(tiny_manifest), "--out", str(cache), "--quiet"]) == 0
+    assert "built" in capsys.readouterr().out
+    assert main(["prepare", "--manifest", str(tiny_manifest), "--out", str(cache), "--quiet"]) == 0
+    assert "unchanged" in capsys.readouterr().out
+    assert main(["qc", str(cache), "--quiet", "--no-montage"]) == 0
+    assert "8 subjects checked" in capsys.readouterr().out
+    _fails(["prepare", "--bids", tmp_path, "--out", tmp_path / "c2"], capsys, "--bids needs --space LABEL")
+    _fails(["prepare", "--manifest", tiny_manifest, "--space", "MNI", "--out", tmp_path / "c2"], capsys,
+           "go with --bids")

@@ -485,3 +485,49 @@ def test_manifest_bom_and_whitespace(tmp_path):
     rows, contrasts = read_manifest(path)
     assert contrasts == ("T1w",)
     assert rows == [ManifestRow("c1", "control", {"T1w": tmp_path.resolve() / "a.nii"}, None, None)]
+
+
+# --------------------------------------------------------------------------------------------
+# every bad line at once; normalisation choices
+
+
+def test_read_manifest_collects_every_bad_line(tmp_path):
+    path = tmp_path / "manifest.csv"
+    path.write_text(GOOD_HEADER + "\nc1,control,a.nii,\nc2,patient,b.nii,\nc1,case,c.nii,\nc3,control,,\n"
+                    ",control,d.nii,\nc4,control\nc5,case,e.nii,m.nii\n")
+    with pytest.raises(CohortError, match=r"line 3 \(subject c2\): unknown role"):
+        read_manifest(path)  # without a list: the first problem raises, as before
+    problems = []
+    rows, contrasts = read_manifest(path, problems)
+    assert [r.subject for r in rows] == ["c1", "c5"] and contrasts == ("T1w",)
+    assert [(p.subject, p.check) for p in problems] == [("c2", "manifest"), ("c1", "manifest"), ("c3", "manifest"),
+                                                        ("", "manifest"), ("c4", "manifest")]
+    assert [p.message.split(": ", 1)[1][:25] for p in problems] == [
+        "unknown role 'patient' in", "subject id 'c1' already u", "empty cell in contrast co",
+        "empty 'subject' cell; giv", "2 cells but the header ha"]
+    assert all(p.file == str(path) for p in problems)
+    only_bad = tmp_path / "bad.csv"
+    only_bad.write_text(GOOD_HEADER + "\nc1,patient,a.nii,\n")
+    problems = []
+    assert read_manifest(only_bad, problems)[0] == [] and len(problems) == 1
+
+
+def test_normalisation_choices(tmp_path):
+    manifest = simple_cohort(tmp_path, np.random.default_rng(19), roles=("control",) * 4)
+    with pytest.raises(ConfigError, match=r"cohort\.normalisation: unknown method 'minmax'; use one of zscore, histogram"):
+        load_cohort(manifest, normalisation="minmax", progress=False)
+    with pytest.raises(ConfigError, match=r"method 'histogram' needs landmarks learned on the controls; use load_cohort / prepare"):
+        normalise(scan(np.random.default_rng(20)), BRAIN, "histogram")
+    c = load_cohort(manifest, normalisation="histogram", progress=False)
+    assert c.normalisation == "histogram" and c.normalisation_params["controls"] == 4
+    assert set(c.stats["s00"]["T1w"]) == {"mean", "std", "landmarks"}
+    z = load_cohort(manifest, progress=False)
+    assert z.normalisation_params == {"method": "zscore", "within": "mask"} and z.cache is None
+    # through stored parameters, a subject gets the same values as in the cohort
+    rows, _ = read_manifest(manifest)
+    sub = load_subject(rows[1].images, subject="s01", normalisation=c.normalisation_params)
+    np.testing.assert_array_equal(sub.data, c.data[1])
+    with pytest.raises(ConfigError, match=r"subject s01: normalisation: no valid histogram landmarks for contrast 'FLAIR' "
+                                          r"\(found contrasts \['T1w'\]\); need 11 increasing numbers"):
+        marks = c.normalisation_params["landmarks"]
+        load_subject(rows[1].images, subject="s01", normalisation=dict(c.normalisation_params, landmarks={"T1w": marks["T1w"]}))

@@ -11,7 +11,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from embed.config import (
-    PLANES, PRECISIONS, RECONSTRUCTIONS, SCHEDULES, _RULES, Config, CohortConfig, LossConfig,
+    EARLY_STOP, PLANES, PRECISIONS, RECONSTRUCTIONS, SCHEDULES, _RULES, Config, CohortConfig, LossConfig,
     ModelConfig, PatchConfig, TrainConfig, dumps, from_dict, load_config, parse_override, to_dict,
 )
 from embed.errors import ConfigError
@@ -238,7 +238,7 @@ def test_integer_accepted_for_a_number():
 # the validation table: one bad value per rule (and a good value at the edge)
 
 BAD = [
-    ("cohort.normalisation", "minmax", rf"one of {re.escape(str(('zscore',)))}"),
+    ("cohort.normalisation", "minmax", rf"one of {re.escape(str(('zscore', 'histogram')))}"),
     ("cohort.val_controls", 1, r"an integer >= 2 \(a validation pair needs two controls\)"),
     ("cohort.val_controls", 0, r"an integer >= 2 \(a validation pair needs two controls\)"),
     ("patch.size", 4, "an odd integer >= 3"),
@@ -262,6 +262,13 @@ BAD = [
     ("train.val_pairs", 1, "an integer >= 2"),
     ("train.threads", -1, r"an integer >= 0 \(0 = all cores\)"),
     ("train.precision", "fp16", re.escape(f"one of {PRECISIONS}")),
+    ("loss.reconstruction_weight", -1.0, "a number >= 0"),
+    ("loss.mmd_weight", -0.5, "a number >= 0"),
+    ("train.checkpoint_every", 0, "an integer >= 1"),
+    ("train.early_stop", "loss", re.escape(f"one of {EARLY_STOP}")),
+    ("train.patience", 0, "an integer >= 1"),
+    ("train.retrieval_voxels", 0, "an integer >= 1"),
+    ("train.projector_points", -1, r"an integer >= 0 \(0 = none\)"),
 ]
 
 EDGE = [
@@ -283,6 +290,13 @@ EDGE = [
     ("train.val_pairs", 2),
     ("train.threads", 0),
     ("train.precision", "bf16"),
+    ("loss.reconstruction_weight", 0.0),
+    ("loss.mmd_weight", 0.0),
+    ("train.checkpoint_every", 1),
+    ("train.early_stop", "cos_gap"),
+    ("train.patience", 1),
+    ("train.retrieval_voxels", 1),
+    ("train.projector_points", 0),
 ]
 
 

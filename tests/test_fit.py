@@ -12,7 +12,7 @@ import torch
 
 from embed import load_encoder
 from embed.cohort import load_cohort
-from embed.config import from_dict, load_config
+from embed.config import from_dict, load_config, to_dict
 from embed.errors import ConfigError
 from embed.fit import check_setup, train
 
@@ -92,3 +92,116 @@ def test_setup_errors_before_anything_is_written(tiny_manifest, tmp_path):
     with pytest.raises(ConfigError, match="patch.size=61"):
         train(_cfg(tiny_manifest, "patch.size=61"), cohort, tmp_path / "never")
     assert not (tmp_path / "never").exists()
+
+
+# --------------------------------------------------------------------------------------------
+# early stopping, --init, ablation switches, and the training config keys
+
+
+def test_early_stopping_stops_and_leaves_a_finished_run(tiny_manifest, tmp_path):
+    cohort = load_cohort(tiny_manifest, progress=False)
+    # With a learning rate of 1e-12 the retrieval score cannot change: no validation improves on
+    # the first, so the run stops after `patience` more validations.
+    cfg = _cfg(tiny_manifest, "train.steps=100", "train.val_every=5", "train.lr=1e-12", "train.early_stop=retrieval",
+               "train.patience=2", "train.projector_points=0")
+    result = train(cfg, cohort, tmp_path / "run", progress=False)
+    assert result.stopped_early and result.steps == 15
+    assert torch.load(tmp_path / "run" / "checkpoints" / "last.pt", weights_only=True)["step"] == 15
+    assert json.loads((tmp_path / "run" / "run.json").read_text())["training"]["finished"] is True
+
+
+@pytest.mark.parametrize("extra", [
+    ["loss.schedule=cosine_ramp", "loss.batch_norm=true", "loss.reconstruction=l1"],
+    ["loss.schedule=step", "loss.centred=true", "train.precision=fp32"],
+    ["loss.agreement_weight=0", "model.channels=[4, 4, 4]", "patch.size=9", "patch.plane=coronal"],
+    ["loss.mmd_weight=1.0", "loss.reconstruction_weight=0.5"],
+])
+def test_ablation_switches_train(tiny_manifest, tmp_path, extra):
+    cohort = load_cohort(tiny_manifest, progress=False)
+    cfg = _cfg(tiny_manifest, "train.steps=4", "train.val_every=2", "train.projector_points=0", *extra)
+    result = train(cfg, cohort, tmp_path / "run", progress=False)
+    assert result.steps == 4 and np.isfinite(result.final["total"])
+    card = json.loads((tmp_path / "run" / "run.json").read_text())
+    assert card["config"]["loss"] == to_dict(cfg)["loss"]  # the card records the resolved switches
+
+
+def test_init_starts_from_the_bundle(tiny_run, tiny_manifest, tmp_path):
+    from embed.bundle import read_bundle
+
+    cohort = load_cohort(tiny_manifest, progress=False)
+    bundle = tiny_run["bundle"]
+    cfg = _cfg(tiny_manifest, "train.steps=1", "train.lr=1e-12", "train.projector_points=0",
+               f'train.init="{bundle.as_posix()}"')
+    train(cfg, cohort, tmp_path / "run", progress=False)
+    tensors, _ = read_bundle(bundle)
+    state = torch.load(tmp_path / "run" / "checkpoints" / "last.pt", weights_only=True)["model"]
+    for k, v in tensors.items():
+        torch.testing.assert_close(state[f"encoder.{k}"], v, rtol=0, atol=1e-9)
+    assert json.loads((tmp_path / "run" / "run.json").read_text())["training"]["init"] == bundle.as_posix()
+
+
+@pytest.mark.parametrize("extra, match", [
+    (["model.dim=6"], r"--init .*: the bundle's model\.dim is 8, this run's is 6; set model\.dim=8"),
+    (["patch.size=7"], r"the bundle's patch size is 5, this run's is 7; set patch\.size=5"),
+    (["patch.plane=coronal"], r"the bundle's patch voxel axis is 2, this run's is 1; set patch\.plane='axial'"),
+    (["model.channels=[8, 8]"], r"the bundle's model\.channels is \[8, 16\], this run's is \[8, 8\]"),
+])
+def test_init_refuses_a_bundle_that_does_not_fit(tiny_run, tiny_manifest, tmp_path, extra, match):
+    from embed.errors import BundleError
+
+    cohort = load_cohort(tiny_manifest, progress=False)
+    cfg = _cfg(tiny_manifest, f'train.init="{tiny_run["bundle"].as_posix()}"', *extra)
+    with pytest.raises(BundleError, match=match) as exc:
+        train(cfg, cohort, tmp_path / "never", progress=False)
+    assert "\n" not in str(exc.value)
+    assert not (tmp_path / "never").exists()
+
+
+def test_init_from_the_cli(tiny_run, tiny_manifest, tmp_path, capsys):
+    from embed.cli import main
+
+    base = ["train", "--quiet", "--cohort", str(tiny_manifest), "--out", str(tmp_path / "run")]
+    sets = [x for kv in TINY_OVERRIDES + ["train.steps=2", "export.example_map=false"] for x in ("--set", kv)]
+    assert main(base + sets + ["--init", str(tmp_path / "missing.safetensors")]) == 2
+    assert "missing.safetensors not found" in capsys.readouterr().err
+    assert main(base + sets + ["--init", str(tiny_run["bundle"])]) == 0
+
+
+def test_setup_refuses_nothing_to_train_and_an_unsplittable_batch(tiny_manifest, monkeypatch):
+    import embed.fit
+
+    cohort = load_cohort(tiny_manifest, progress=False)
+    with pytest.raises(ConfigError, match=r"loss\.reconstruction_weight and loss\.agreement_weight are both 0"):
+        check_setup(_cfg(tiny_manifest, "loss.reconstruction_weight=0", "loss.agreement_weight=0"), cohort)
+    monkeypatch.setattr(embed.fit, "world_info", lambda: (0, 3))
+    with pytest.raises(ConfigError, match=r"train\.batch_size=32 does not split over 3 processes; use a multiple of 3"):
+        check_setup(_cfg(tiny_manifest), cohort)
+
+
+# The rules this engine added to embed.config (mirrors tests/test_config.py's BAD / EDGE tables).
+TRAIN_BAD = [
+    ("loss.reconstruction_weight", -1.0, "a number >= 0"),
+    ("loss.mmd_weight", -0.5, "a number >= 0"),
+    ("loss.schedule", "linear", r"one of \('constant', 'ramp', 'cosine_ramp', 'step'\)"),
+    ("train.checkpoint_every", 0, "an integer >= 1"),
+    ("train.early_stop", "loss", r"one of \('none', 'total', 'reconstruction', 'retrieval', 'cos_gap'\)"),
+    ("train.patience", 0, "an integer >= 1"),
+    ("train.retrieval_voxels", 0, "an integer >= 1"),
+    ("train.projector_points", -1, r"an integer >= 0 \(0 = none\)"),
+]
+TRAIN_EDGE = [("loss.reconstruction_weight", 0.0), ("loss.mmd_weight", 0.0), ("loss.schedule", "cosine_ramp"), ("loss.schedule", "step"),
+              ("train.checkpoint_every", 1), ("train.early_stop", "cos_gap"), ("train.patience", 1),
+              ("train.retrieval_voxels", 1), ("train.projector_points", 0)]
+
+
+@pytest.mark.parametrize("key, value, want", TRAIN_BAD)
+def test_training_config_rules_reject(key, value, want):
+    section, name = key.split(".")
+    with pytest.raises(ConfigError, match=rf"run\.toml: {key} must be {want}, got "):
+        from_dict({section: {name: value}}, where="run.toml")
+
+
+@pytest.mark.parametrize("key, value", TRAIN_EDGE)
+def test_training_config_rules_accept_edge(key, value):
+    section, name = key.split(".")
+    assert getattr(getattr(from_dict({section: {name: value}}), section), name) == value

@@ -8,7 +8,7 @@ import pytest
 import torch
 
 from embed.bundle import load_encoder, read_bundle
-from embed.errors import BundleError
+from embed.errors import BundleError, InputError
 from embed.jobs import export_run
 from embed.model import build
 
@@ -54,3 +54,29 @@ def test_export_run_damaged(tmp_path):
     (run / "checkpoints" / "last.pt").write_bytes(b"garbage")
     with pytest.raises(BundleError, match=r"cannot read run\.json or checkpoints/last\.pt"):
         export_run(run)
+
+
+def test_train_from_a_histogram_cache_and_normalise_a_case_through_the_bundle(tiny_manifest, tmp_path):
+    # Issue 3's promise: a case normalised through a bundle matches the controls' normalisation.
+    from embed.cache import load_cache, prepare
+    from embed.cohort import load_subject
+    from embed.config import load_config
+    from embed.jobs import train_job
+
+    from .conftest import TINY_OVERRIDES
+
+    cache = prepare(tiny_manifest, out=tmp_path / "cache", normalisation="histogram", progress=False).cache
+    cfg = load_config(None, TINY_OVERRIDES + [f'cohort.manifest="{cache.as_posix()}"', "train.steps=4",
+                                              "train.val_every=2", "cohort.normalisation=histogram"])
+    out = train_job(cfg, tmp_path / "run", progress=False, log=lambda m: None)
+    card = load_encoder(out["bundle"]).card
+    assert card["normalisation"]["method"] == "histogram" and "landmarks" in card["normalisation"]
+    cohort = load_cache(cache)
+    i = cohort.subjects.index("ctl02")
+    root = tiny_manifest.parent
+    subject = load_subject({"T1w": root / "images" / "ctl02_T1w.nii.gz", "FLAIR": root / "images" / "ctl02_FLAIR.nii.gz"},
+                           mask=root / "masks" / "ctl02_mask.nii.gz", normalisation=card["normalisation"])
+    np.testing.assert_array_equal(subject.data, np.asarray(cohort.data[i]))
+    bad = load_config(None, TINY_OVERRIDES + [f'cohort.manifest="{cache.as_posix()}"'])
+    with pytest.raises(InputError, match="was prepared with normalisation 'histogram'"):
+        train_job(bad, tmp_path / "run2", progress=False, log=lambda m: None)

@@ -152,3 +152,55 @@ def test_build_does_not_depend_on_or_touch_the_global_rng():
     m2 = build(1, 5, (3,), 4, seed=7)
     for (k1, v1), (k2, v2) in zip(m1.state_dict().items(), m2.state_dict().items()):
         assert k1 == k2 and torch.equal(v1, v2)
+
+
+# --------------------------------------------------------------------------------------------
+# forward_matmul: the same network as matrix products (the fast training path)
+
+from embed.model import forward_matmul, overlap_add, windows  # noqa: E402
+
+
+@pytest.mark.parametrize("c, p, channels, dim", CASES)
+def test_matmul_path_equals_modules_in_fp32(c, p, channels, dim):
+    model = build(c, p, channels, dim, seed=3)
+    x = randn(5, 7, c, p, p)
+    z_ref, r_ref = model(x)
+    z, r = forward_matmul(model, x, torch.float32)
+    assert z.dtype == r.dtype == torch.float32 and tuple(r.shape) == (7, c, p, p)
+    torch.testing.assert_close(z, z_ref, rtol=0, atol=1e-5)
+    torch.testing.assert_close(r, r_ref, rtol=0, atol=1e-5)
+    # Gradients reach the same parameters with the same values.
+    target = randn(6, 7, c, p, p)
+    g_ref = torch.autograd.grad(((r_ref - target) ** 2).mean() + z_ref.pow(2).mean(), list(model.parameters()))
+    g = torch.autograd.grad(((r - target) ** 2).mean() + z.pow(2).mean(), list(model.parameters()))
+    for a, b in zip(g, g_ref):
+        torch.testing.assert_close(a, b, rtol=1e-4, atol=1e-6)
+
+
+def test_matmul_path_in_bf16_is_close_to_fp32():
+    model = build(2, 7, (32, 64), 32, seed=0)
+    x = randn(7, 64, 2, 7, 7)
+    z_ref, r_ref = model(x)
+    z, r = forward_matmul(model, x, torch.bfloat16)
+    assert z.dtype == r.dtype == torch.float32
+    # bfloat16 keeps 8 significant bits (relative rounding 2**-8 per operation).
+    assert ((z - z_ref).norm() / z_ref.norm()).item() < 0.02
+    assert ((r - r_ref).norm() / r_ref.norm()).item() < 0.02
+
+
+@pytest.mark.parametrize("s, k", [(5, 3), (7, 3), (3, 3), (4, 1)])
+def test_windows_match_unfold_and_overlap_add_is_its_adjoint(s, k):
+    h = randn(8, 3, s, s, 4)  # (N, s, s, c)
+    cols = windows(h, k)
+    o = s - k + 1
+    assert tuple(cols.shape) == (3, o, o, k, k, 4)
+    # Reference: torch.nn.functional.unfold (im2col) on the channels-first tensor; its column
+    # layout is (c, ky, kx) x (y, x).
+    ref = torch.nn.functional.unfold(h.permute(0, 3, 1, 2), k).view(3, 4, k, k, o, o)
+    torch.testing.assert_close(cols, ref.permute(0, 4, 5, 2, 3, 1), rtol=0, atol=0)
+    # Adjoint: <windows(h), g> == <h, overlap_add(g)> for any g (definition of the adjoint).
+    g = randn(9, 3, o, o, k, k, 4)
+    torch.testing.assert_close((cols * g).sum(), (h * overlap_add(g, k)).sum(), rtol=1e-5, atol=1e-4)
+    # ... and overlap_add is torch.nn.functional.fold (col2im) in channels-last layout.
+    folded = torch.nn.functional.fold(g.permute(0, 5, 3, 4, 1, 2).reshape(3, 4 * k * k, o * o), (s, s), k)
+    torch.testing.assert_close(overlap_add(g, k), folded.permute(0, 2, 3, 1), rtol=1e-6, atol=1e-5)

@@ -10,7 +10,8 @@ from hypothesis import strategies as st
 from sklearn.metrics.pairwise import cosine_similarity
 
 from embed.monitor import MIN_EFFECTIVE_RANK, MIN_SPREAD, collapse_warning, recon_grid
-from embed.objective import agreement, agreement_weight, centre, cosine_diagnostics, pair_loss, reconstruction
+from embed.objective import (agreement, agreement_space, agreement_weight, centre, cosine_diagnostics, pair_loss,
+                             reconstruction, retrieval_score)
 
 
 def sk_agreement(z1: np.ndarray, z2: np.ndarray) -> float:
@@ -260,3 +261,86 @@ def test_recon_grid_fewer_patches_and_constant_input():
     g = recon_grid(x, x + 0.5, n=8)
     assert g.shape == (2 * 3, 3 * 3)
     assert np.isfinite(g).all() and g.min() >= 0.0 and g.max() <= 1.0
+
+
+# --------------------------------------------------------------------------------------------
+# ablation switches: schedules, batch-normalised agreement, reconstruction weight; retrieval
+
+
+def test_cosine_ramp_schedule():
+    total, w, frac = 100, 2.0, 0.4
+    got = np.array([agreement_weight(s, total, w, "cosine_ramp", frac) for s in range(total)])
+    t = np.minimum(np.arange(total) / (frac * total), 1.0)
+    np.testing.assert_allclose(got, w * 0.5 * (1 - np.cos(np.pi * t)), rtol=0, atol=1e-12)  # half-cosine ramp
+    assert got[0] == 0.0 and got[20] == pytest.approx(w / 2) and got[40] == w and (np.diff(got) >= 0).all()
+
+
+def test_step_schedule():
+    got = [agreement_weight(s, 10, 1.5, "step", 0.3) for s in range(10)]
+    assert got == [0.0, 0.0, 0.0] + [1.5] * 7
+
+
+def test_batchnorm_agreement_matches_torch_batchnorm_and_sklearn():
+    z1, z2 = pair_batch(np.random.default_rng(13), n=50, d=5, offset=2.0)
+    z1, z2 = z1 * np.array([1, 10, 0.1, 3, 1]), z2 * np.array([1, 10, 0.1, 3, 1])
+    # Reference: torch.nn.BatchNorm1d(affine=False) in training mode over the 2N embeddings.
+    bn = torch.nn.BatchNorm1d(5, affine=False, dtype=torch.float64).train()
+    n1, n2 = bn(torch.from_numpy(np.concatenate([z1, z2]))).detach().numpy().reshape(2, 50, 5)
+    got = agreement(torch.from_numpy(z1), torch.from_numpy(z2), "batchnorm").item()
+    assert got == pytest.approx(sk_agreement(n1, n2), abs=1e-9)
+    assert agreement(torch.from_numpy(z1), torch.from_numpy(z2), "centred").item() == pytest.approx(
+        agreement(torch.from_numpy(z1), torch.from_numpy(z2), True).item())
+    assert agreement_space(False, False) == "raw" and agreement_space(True, False) == "centred"
+    assert agreement_space(False, True) == "batchnorm" and agreement_space(True, True) == "batchnorm"
+
+
+@pytest.mark.parametrize("rec_weight", [0.0, 0.3, 1.0])
+def test_reconstruction_weight(rec_weight):
+    rng = np.random.default_rng(14)
+    x1, x2, r1, r2 = (torch.from_numpy(rng.normal(size=(6, 2, 3, 3))) for _ in range(4))
+    z1, z2 = (torch.from_numpy(a) for a in pair_batch(rng, n=6, d=4))
+    t = pair_loss(x1, x2, r1, r2, z1, z2, weight=0.7, rec_weight=rec_weight)
+    assert t["total"].item() == pytest.approx(rec_weight * t["reconstruction"].item() + 0.7 * t["agreement"].item())
+
+
+def test_retrieval_score_matches_sklearn_nearest_neighbours():
+    from sklearn.neighbors import NearestNeighbors
+
+    rng = np.random.default_rng(15)
+    k, r, d, true = 40, 27, 6, 13
+    cand = rng.normal(size=(k, r, d))
+    query = cand[:, true] + rng.normal(scale=0.7, size=(k, d))
+    want = np.mean([NearestNeighbors(n_neighbors=1).fit(cand[i]).kneighbors(query[i:i + 1])[1][0, 0] == true
+                    for i in range(k)])  # scikit-learn, Euclidean nearest neighbour
+    assert retrieval_score(query, cand, true) == pytest.approx(want)
+    assert 0 < want < 1
+    assert retrieval_score(cand[:, true], cand, true) == 1.0  # the query itself among the candidates
+
+
+def np_mmd(z: np.ndarray, p: np.ndarray) -> float:
+    """Unbiased squared MMD with k(x, y) = C / (C + |x - y|^2), C = 2 D, written out with loops as in
+    Tolstikhin et al., Wasserstein Auto-Encoders (ICLR 2018), Algorithm 2."""
+    n, d = z.shape
+    c = 2.0 * d
+    k = lambda a, b: c / (c + np.sum((a - b) ** 2))  # noqa: E731
+    zz = sum(k(z[i], z[j]) for i in range(n) for j in range(n) if i != j) / (n * (n - 1))
+    pp = sum(k(p[i], p[j]) for i in range(n) for j in range(n) if i != j) / (n * (n - 1))
+    zp = sum(k(z[i], p[j]) for i in range(n) for j in range(n)) / (n * n)
+    return zz + pp - 2 * zp
+
+
+def test_mmd_matches_the_written_out_estimator():
+    from embed.objective import mmd_to_prior
+
+    rng = np.random.default_rng(16)
+    z, p = rng.normal(size=(12, 3)) * 2 + 1, rng.normal(size=(12, 3))
+    assert mmd_to_prior(torch.from_numpy(z), torch.from_numpy(p)).item() == pytest.approx(np_mmd(z, p), rel=1e-9)
+
+
+def test_mmd_separates_a_shifted_sample_from_the_prior():
+    from embed.objective import mmd_to_prior, prior_draw
+
+    same = mmd_to_prior(prior_draw(400, 4, [1]), prior_draw(400, 4, [2])).item()
+    shifted = mmd_to_prior(prior_draw(400, 4, [1]) + 1.0, prior_draw(400, 4, [2])).item()
+    assert abs(same) < 0.01 < shifted  # unbiased: near 0 for two samples of one distribution
+    assert torch.equal(prior_draw(5, 2, [3, 4]), prior_draw(5, 2, [3, 4]))  # seeded, so resumable

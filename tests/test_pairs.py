@@ -185,3 +185,38 @@ def test_check_patch_fits_rejects(axis, p, inplane):
     with pytest.raises(ConfigError, match=match) as exc:
         check_patch_fits(GRID, p, axis)
     assert "larger than the grid" in str(exc.value) and "\n" not in str(exc.value)
+
+
+# --------------------------------------------------------------------------------------------
+# the sliding-window gather and the retrieval set
+
+
+@pytest.mark.parametrize("axis", [0, 1, 2])
+def test_window_gather_equals_index_gather_inside_and_at_the_border(axis):
+    from embed.pairs import _gather_padded
+
+    rng = np.random.default_rng(20 + axis)
+    data = random_data(rng, s=3, c=2, grid=(12, 13, 11))
+    centres = np.concatenate([border_and_random_centres(rng, grid=(12, 13, 11), n_random=60)])
+    subjects = rng.integers(0, 3, size=len(centres))
+    got = gather_patches(data, subjects, centres, 5, axis)
+    np.testing.assert_array_equal(got, _gather_padded(data, subjects, centres, 5, axis))
+    want = np.stack([naive_patch(data, s, c, 5, axis) for s, c in zip(subjects, centres)])
+    np.testing.assert_array_equal(got, want)
+
+
+def test_retrieval_set():
+    from embed.pairs import sample_retrieval
+
+    rng = np.random.default_rng(5)
+    data = random_data(rng, s=4, grid=(9, 10, 8))
+    voxels = np.argwhere(np.ones((9, 10, 8), bool))
+    ret = sample_retrieval(data, 1, 3, voxels, 30, 3, 2, np.random.default_rng(0))
+    assert ret.query.shape == (30, 2, 3, 3) and ret.candidates.shape == (30, 27, 2, 3, 3)
+    assert ret.true_index == 13  # the centre of the 3 x 3 x 3 cube, in C order
+    assert len({tuple(c) for c in ret.centres.tolist()}) == 30  # drawn without replacement
+    assert ((ret.centres >= 1) & (ret.centres < np.array([8, 9, 7]))).all()  # whole cube inside the grid
+    np.testing.assert_array_equal(ret.query, gather_patches(data, np.full(30, 1), ret.centres, 3, 2))
+    np.testing.assert_array_equal(ret.candidates[:, ret.true_index], gather_patches(data, np.full(30, 3), ret.centres, 3, 2))
+    # candidate 0 sits at offset (-1, -1, -1)
+    np.testing.assert_array_equal(ret.candidates[:, 0], gather_patches(data, np.full(30, 3), ret.centres - 1, 3, 2))
