@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 import warnings
 from pathlib import Path
 
@@ -24,6 +23,7 @@ from safetensors.torch import save_file
 
 from .dense import Encoder
 from .errors import BundleError
+from .files import atomic
 from .model import PatchEncoder
 
 FORMAT = "twinpatch-encoder"
@@ -47,12 +47,8 @@ def write_bundle(path: str | Path, tensors: dict[str, torch.Tensor], card: dict)
     path.parent.mkdir(parents=True, exist_ok=True)
     tensors = {k: v.detach().contiguous().cpu() for k, v in tensors.items()}
     card = dict(card, format=FORMAT, format_version=FORMAT_VERSION, weights_sha256=weights_sha256(tensors))
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    try:
+    with atomic(path) as tmp:
         save_file(tensors, str(tmp), metadata={CARD_KEY: json.dumps(card, sort_keys=True)})
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
     return path
 
 
@@ -162,10 +158,9 @@ def export_onnx(encoder: Encoder, path: str | Path, opset: int = 17) -> Path:
     except ImportError:
         raise BundleError("--onnx needs the onnx package: pip install onnx") from None
     path = Path(path)
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
     p = encoder.patch_size
     example = torch.zeros(1, encoder.in_channels, p + 4, p + 6)
-    try:
+    with atomic(path) as tmp:
         with warnings.catch_warnings():  # the TorchScript-based exporter is deprecated but needs no onnxscript
             warnings.simplefilter("ignore", DeprecationWarning)
             torch.onnx.export(encoder.module, (example,), str(tmp), input_names=["x"], output_names=["z"],
@@ -175,7 +170,4 @@ def export_onnx(encoder: Encoder, path: str | Path, opset: int = 17) -> Path:
         entry = model.metadata_props.add()
         entry.key, entry.value = CARD_KEY, json.dumps(encoder.card, sort_keys=True)
         onnx.save(model, str(tmp))
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
     return path

@@ -16,6 +16,7 @@ import torch
 from tqdm.auto import tqdm
 
 from .errors import InputError
+from .files import atomic
 from .model import PatchEncoder
 
 PRECISIONS = ("fp32", "bf16")
@@ -157,7 +158,6 @@ def write_embedding_map(path: str | Path, emb: np.ndarray, affine: np.ndarray, h
     ``.json`` in place of ``.nii``/``.nii.gz``.
     """
     import json
-    import os
 
     import nibabel as nib
 
@@ -173,15 +173,7 @@ def write_embedding_map(path: str | Path, emb: np.ndarray, affine: np.ndarray, h
     img.header.set_intent("vector", (), name="embedding")
     suffix = ".nii.gz" if path.name.endswith(".nii.gz") else path.suffix
     stem = path.name[: -len(suffix)] if suffix else path.name
-    tmp = path.with_name(f".{stem}.partial-{os.getpid()}{suffix}")
-    side = path.with_name(f"{stem}.json")
-    side_tmp = side.with_name(f".{side.name}.partial-{os.getpid()}")
-    try:
+    with atomic(path) as tmp, atomic(path.with_name(f"{stem}.json")) as side_tmp:  # both or neither
         nib.save(img, tmp)
         side_tmp.write_text(json.dumps(sidecar, indent=2, default=str), encoding="utf-8")
-        os.replace(tmp, path)
-        os.replace(side_tmp, side)
-    finally:
-        tmp.unlink(missing_ok=True)
-        side_tmp.unlink(missing_ok=True)
     return path

@@ -36,6 +36,7 @@ import nibabel as nib
 import numpy as np
 import torch
 
+from .files import atomic, write_text
 from . import __version__
 from .cohort import Cohort, plane_axis
 from .config import Config, dumps, to_dict
@@ -62,21 +63,11 @@ class TrainResult:
     stopped_early: bool = False
 
 
-def write_text_atomic(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, path)
-
-
 def save_checkpoint(path: Path, state: dict) -> None:
     """Atomic ``torch.save``; ``state`` holds tensors and plain values only (``weights_only`` loads it)."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    try:
+    with atomic(path) as tmp:
         torch.save(state, tmp)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
 
 
 def load_checkpoint(path: Path) -> dict:
@@ -279,7 +270,7 @@ def _train(cfg: Config, cohort: Cohort, run_dir: Path, axis: int, progress: bool
         if main:
             result = TrainResult(run_dir, step, seconds, step * tc.batch_size / max(seconds, 1e-9), state["val"],
                                  bool(state.get("stopped_early")))
-            write_text_atomic(run_dir / "run.json",
+            write_text(run_dir / "run.json",
                               json.dumps(run_card(cfg, cohort, axis, train_idx, val_idx, result, state), indent=2))
 
     monitor = None
@@ -288,7 +279,7 @@ def _train(cfg: Config, cohort: Cohort, run_dir: Path, axis: int, progress: bool
         if resume:
             truncate_metrics(run_dir / "metrics.jsonl", start)
         else:
-            write_text_atomic(run_dir / "config.toml", dumps(cfg))
+            write_text(run_dir / "config.toml", dumps(cfg))
             checkpoint(0)
             write_card(0, 0.0)
         monitor = Monitor(run_dir, tc.steps, progress, start_step=start)

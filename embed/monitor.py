@@ -21,11 +21,12 @@ from __future__ import annotations
 
 import json
 import math
-import os
 from pathlib import Path
 
 import numpy as np
 from tqdm.auto import tqdm
+
+from .files import write_text
 
 # Below these the embedding has collapsed onto (nearly) one point or one line
 # (common practice, no source; the values are ours).
@@ -83,9 +84,7 @@ def truncate_metrics(path: Path, step: int) -> int:
             continue
         if isinstance(row, dict) and isinstance(row.get("step"), int) and row["step"] < step:
             kept.append(line)
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    tmp.write_text("".join(x + "\n" for x in kept), encoding="utf-8")
-    os.replace(tmp, path)
+    write_text(path, "".join(x + "\n" for x in kept))
     return len(kept)
 
 

@@ -41,6 +41,7 @@ import numpy as np
 from scipy import ndimage
 from tqdm import tqdm
 
+from .files import atomic
 from .checks import pread_array
 from .errors import InputError
 
@@ -164,13 +165,8 @@ def qc_csv(rows) -> str:
 
 
 def _replace(path: pathlib.Path, write) -> None:
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    try:
+    with atomic(path) as tmp:
         write(tmp)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
 
 
 def write_csv(path, rows) -> pathlib.Path:

@@ -9,11 +9,12 @@ subject's right on the right ("neurological" view). The caption carries the rese
 
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
 import matplotlib
 import numpy as np
+
+from .files import atomic
 
 CAUTION = ("Research software, not a diagnostic device: findings need expert review "
            "under local clinical practice.")
@@ -68,11 +69,9 @@ def cluster_figure(path: str | Path, background: np.ndarray, score: np.ndarray, 
            f"{float(row['peak_z_mm']):.0f}) mm"
     fig.suptitle(f"{subject} cluster {rank}: {size}, mean {float(row['mean_score']):.2f}, {peak}", fontsize=10)
     fig.supxlabel(CAUTION, fontsize=8, color="#444444")
-    tmp = path.with_name(f".{path.stem}.partial-{os.getpid()}.png")
     try:
-        fig.savefig(tmp, dpi=110)
-        os.replace(tmp, path)
+        with atomic(path) as tmp:
+            fig.savefig(tmp, dpi=110)
     finally:
         plt.close(fig)
-        tmp.unlink(missing_ok=True)
     return path

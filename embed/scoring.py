@@ -20,7 +20,6 @@ practice. Every output says so.
 from __future__ import annotations
 
 import json
-import os
 from pathlib import Path
 
 import nibabel as nib
@@ -32,18 +31,13 @@ from .bundle import load_encoder
 from .clusters import find_clusters, threshold, write_clusters_csv
 from .cohort import load_subject
 from .errors import InputError
+from .files import atomic, write_json
 from .report import CAUTION, cluster_figure
 from .scorers import Standardiser, loo_scores, make_scorer
 from .scorers.normalise import loo_moments
 from .store import Store
 
 BLOCK_VOXELS = 4096  # voxels per block when fitting and scoring
-
-
-def _save_json(path: Path, data: dict) -> None:
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    tmp.write_text(json.dumps(data, indent=1, default=str), encoding="utf-8")
-    os.replace(tmp, path)
 
 
 def score_fit(store_path: str | Path, out: str | Path, *, scorer: str = "ocsvm", params: dict | None = None,
@@ -70,10 +64,9 @@ def score_fit(store_path: str | Path, out: str | Path, *, scorer: str = "ocsvm",
     standardiser = Standardiser.from_moments(mean, sd, floor_fraction)
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    tmp = out / f".standardise.partial-{os.getpid()}.npz"
-    np.savez(tmp, mean=standardiser.mean, sd=standardiser.sd)
-    os.replace(tmp, out / "standardise.npz")
-    _save_json(out / "scorer.json", {
+    with atomic(out / "standardise.npz") as tmp:
+        np.savez(tmp, mean=standardiser.mean, sd=standardiser.sd)
+    write_json(out / "scorer.json", {
         "scorer": scorer, "params": params, "store": str(Path(store_path).resolve()),
         "bundle": str(bundle.resolve()), "bundle_sha256": encoder.card.get("weights_sha256"),
         "floor": standardiser.floor, "floor_fraction": floor_fraction, "n_controls": int(len(controls)),
@@ -99,12 +92,8 @@ def _write_map(path: Path, data: np.ndarray, subject, dtype) -> None:
     img = nib.Nifti1Image(data.astype(dtype), subject.affine)
     img.set_sform(subject.affine, code=int(subject.header["sform_code"]) or 2)
     img.set_qform(subject.affine, code=int(subject.header["qform_code"]))
-    tmp = path.with_name(f".{path.name[:-7]}.partial-{os.getpid()}.nii.gz")
-    try:
+    with atomic(path) as tmp:
         nib.save(img, tmp)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
 
 
 def score_apply(scorer_dir: str | Path, images: dict[str, Path], out: str | Path, *, mask: str | Path | None = None,
@@ -163,5 +152,5 @@ def score_apply(scorer_dir: str | Path, images: dict[str, Path], out: str | Path
         "connectivity": connectivity, "min_size_mm3": min_size_mm3, "n_clusters": len(table), "figures": pngs,
         "twinpatch_version": __version__, **(override or {}),
     }
-    _save_json(out / "summary.json", summary)
+    write_json(out / "summary.json", summary)
     return summary

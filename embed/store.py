@@ -20,7 +20,6 @@ This module knows nothing about encoders: it stores arrays.
 from __future__ import annotations
 
 import json
-import os
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -28,6 +27,7 @@ import numpy as np
 from tqdm.auto import tqdm
 
 from .errors import InputError
+from .files import atomic, write_json
 
 LAYOUT = "twinpatch-embedding-store"
 LAYOUT_VERSION = 1
@@ -35,25 +35,9 @@ DTYPES = ("float32", "float16")
 MERGE_BLOCK_BYTES = 64 * 2**20  # memory for one block while merging
 
 
-def _atomic(path: Path, write) -> None:
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    try:
-        write(tmp)
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
-
-
 def _save_npy(path: Path, array: np.ndarray) -> None:
-    def write(tmp: Path) -> None:
-        with open(tmp, "wb") as f:
-            np.save(f, array)
-
-    _atomic(path, write)
-
-
-def _save_json(path: Path, data: dict) -> None:
-    _atomic(path, lambda tmp: tmp.write_text(json.dumps(data, indent=1, default=str), encoding="utf-8"))
+    with atomic(path) as tmp, open(tmp, "wb") as f:
+        np.save(f, array)
 
 
 def create(path: str | Path, *, subjects: list[str], roles: list[str], voxels: np.ndarray, dim: int,
@@ -88,7 +72,7 @@ def create(path: str | Path, *, subjects: list[str], roles: list[str], voxels: n
         return path
     (path / "subjects").mkdir(parents=True, exist_ok=True)
     _save_npy(path / "voxels.npy", np.asarray(voxels, dtype=np.int32))
-    _save_json(meta, desc)  # last: marks the layout complete
+    write_json(meta, desc)  # last: marks the layout complete
     return path
 
 
@@ -131,7 +115,7 @@ def write_subject(path: str | Path, subject: str, emb: np.ndarray, sidecar: dict
     if desc["dtype"] != "float32":
         sidecar["max_abs_rounding_error"] = float(np.abs(stored.astype(np.float32) - emb).max()) if emb.size else 0.0
         sidecar["max_abs_value"] = float(np.abs(emb).max()) if emb.size else 0.0
-    _save_json(subject_path(path, subject).with_suffix(".json"), sidecar)
+    write_json(subject_path(path, subject).with_suffix(".json"), sidecar)
     _save_npy(subject_path(path, subject), stored)  # last: marks the subject done
     return sidecar
 
@@ -153,17 +137,13 @@ def merge(path: str | Path, progress: bool = True) -> Path:
     sources = [np.load(subject_path(path, s), mmap_mode="r") for s in desc["subjects"]]
     block = max(1, MERGE_BLOCK_BYTES // max(1, n_sub * dim * dtype.itemsize))
     out_path = path / "embeddings.npy"
-    tmp = out_path.with_name(f".{out_path.name}.partial-{os.getpid()}")
-    try:
+    with atomic(out_path) as tmp:
         out = np.lib.format.open_memmap(tmp, mode="w+", dtype=dtype, shape=(n_vox, n_sub, dim))
         for v0 in tqdm(range(0, n_vox, block), desc="merge store", unit="block", disable=not progress):
             v1 = min(v0 + block, n_vox)
             out[v0:v1] = np.stack([src[v0:v1] for src in sources], axis=1)
         out.flush()
         del out
-        os.replace(tmp, out_path)
-    finally:
-        tmp.unlink(missing_ok=True)
     return out_path
 
 

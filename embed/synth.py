@@ -28,7 +28,6 @@ import csv
 import functools
 import io
 import json
-import os
 import pathlib
 from dataclasses import dataclass
 
@@ -39,6 +38,7 @@ from tqdm import tqdm
 
 from . import __version__
 from .errors import InputError
+from .files import atomic
 
 CONTRASTS = ("T1w", "FLAIR")
 TISSUES = ("gm", "wm", "csf")
@@ -323,13 +323,8 @@ Regenerate with:
 
 
 def _atomic_write(path: pathlib.Path, write) -> None:
-    tmp = path.with_name(f".tmp-{os.getpid()}-{path.name}")
-    try:
+    with atomic(path) as tmp:
         write(tmp)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
 
 
 def _write_text(path: pathlib.Path, text: str) -> None:
