@@ -403,3 +403,27 @@ def _reason(report, subject: str) -> str:
     return next(r.reason for r in report.rows if r.subject == subject)
 
 
+def qc_cache(cache_dir, threshold: float = _qc.QC_THRESHOLD, write_montage: bool = True, progress: bool = True) -> _qc.QcReport:
+    """QC of a prepared cache (``twinpatch qc CACHE_DIR``): recompute the metrics on the cached
+    intensities and write ``qc.csv`` (and ``qc.png``) in the cache folder.
+
+    On a z-scored cache the numbers equal those prepare wrote; on a histogram-standardised cache
+    they are computed on the standardised intensities. Subjects excluded by prepare are not in
+    the cache, so they are not in this table. Reads one plane per subject (or one volume) at a time.
+    """
+    cache_dir = pathlib.Path(cache_dir)
+    desc = read_description(cache_dir)
+    subs = desc["subjects"]
+    mask = np.asarray(nib.load(cache_dir / MASK_NII).dataobj) != 0
+    data_fd, masks_fd = os.open(cache_dir / DATA, os.O_RDONLY), os.open(cache_dir / MASKS, os.O_RDONLY)
+    try:
+        report = _qc.qc_files(data_fd, masks_fd, tuple(desc["grid"]["shape"]), np.asarray(desc["grid"]["affine"]),
+                          [s["subject"] for s in subs], [s["role"] for s in subs], desc["contrasts"],
+                          {s["subject"]: s["stats"] for s in subs}, {s["subject"]: s["landmarks"] for s in subs},
+                          [s["mask_voxels"] for s in subs], mask, threshold,
+                          cache_dir / QC_PNG if write_montage else None, progress)
+    finally:
+        os.close(data_fd)
+        os.close(masks_fd)
+    _qc.write_csv(cache_dir / QC_CSV, report.rows)
+    return report

@@ -215,7 +215,7 @@ def _cmd_prepare(args) -> None:
 
 
 def _cmd_qc(args) -> None:
-    from .qc import qc_cache
+    from .cache import qc_cache
 
     report = qc_cache(args.cache, threshold=args.threshold, write_montage=not args.no_montage,
                       progress=not args.quiet)

@@ -29,7 +29,6 @@ from __future__ import annotations
 import csv
 import io
 import math
-import os
 import pathlib
 import struct
 import zlib
@@ -41,8 +40,8 @@ import numpy as np
 from scipy import ndimage
 from tqdm import tqdm
 
-from .files import atomic
 from .checks import pread_array
+from .files import atomic
 from .errors import InputError
 
 QC_THRESHOLD = 3.5
@@ -311,7 +310,7 @@ def qc_files(data_fd: int, masks_fd: int, shape: tuple, affine: np.ndarray, subj
     (S, X, Y, Z), read with ``pread`` one slab or volume at a time (no memory map). With
     ``zscore_on_the_fly`` the data are raw intensities, z-scored inside each subject's mask with
     ``stats`` exactly as :func:`embed.normalise.zscore` does."""
-    S, C, V = len(subjects), len(contrasts), int(np.prod(shape))
+    C, V = len(contrasts), int(np.prod(shape))
     plane = int(np.prod(shape[1:]))
 
     def read_slab(s, c, x0, x1):
@@ -328,31 +327,3 @@ def qc_files(data_fd: int, masks_fd: int, shape: tuple, affine: np.ndarray, subj
     return run_qc(read_slab, lambda s: pread_array(masks_fd, shape, np.uint8, s * V).view(np.bool_),
                   lambda s: pread_array(data_fd, shape, "<f4", s * C * V * 4), subjects, roles, contrasts,
                   stats, landmarks, mask_voxels, mask, affine, threshold, montage_path, progress)
-
-
-def qc_cache(cache_dir, threshold: float = QC_THRESHOLD, write_montage: bool = True, progress: bool = True) -> QcReport:
-    """QC of a prepared cache (``twinpatch qc CACHE_DIR``): recompute the metrics on the cached
-    intensities and write ``qc.csv`` (and ``qc.png``) in the cache folder.
-
-    On a z-scored cache the numbers equal those prepare wrote; on a histogram-standardised cache
-    they are computed on the standardised intensities. Subjects excluded by prepare are not in
-    the cache, so they are not in this table. Reads one plane per subject (or one volume) at a time.
-    """
-    from .cache import DATA, MASK_NII, MASKS, QC_CSV, QC_PNG, read_description
-
-    cache_dir = pathlib.Path(cache_dir)
-    desc = read_description(cache_dir)
-    subs = desc["subjects"]
-    mask = np.asarray(nib.load(cache_dir / MASK_NII).dataobj) != 0
-    data_fd, masks_fd = os.open(cache_dir / DATA, os.O_RDONLY), os.open(cache_dir / MASKS, os.O_RDONLY)
-    try:
-        report = qc_files(data_fd, masks_fd, tuple(desc["grid"]["shape"]), np.asarray(desc["grid"]["affine"]),
-                          [s["subject"] for s in subs], [s["role"] for s in subs], desc["contrasts"],
-                          {s["subject"]: s["stats"] for s in subs}, {s["subject"]: s["landmarks"] for s in subs},
-                          [s["mask_voxels"] for s in subs], mask, threshold,
-                          cache_dir / QC_PNG if write_montage else None, progress)
-    finally:
-        os.close(data_fd)
-        os.close(masks_fd)
-    write_csv(cache_dir / QC_CSV, report.rows)
-    return report

@@ -11,7 +11,8 @@ from scipy.spatial import distance
 
 from embed.cache import load_cache, prepare, read_description
 from embed.errors import CohortError, InputError
-from embed.qc import MAD_TO_SD, QC_THRESHOLD, assess, dice, mid_slices, qc_cache, robust_z, similarity
+from embed.cache import qc_cache
+from embed.qc import MAD_TO_SD, QC_THRESHOLD, assess, dice, mid_slices, robust_z, similarity
 
 MOVED = "ctl05"
 
