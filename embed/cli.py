@@ -148,6 +148,7 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--nu", type=float, default=0.5, help="ocsvm: nu (default 0.5)")
     f.add_argument("--gamma", default="scale", help="ocsvm: 'scale' (default), 'median' or a number")
     f.add_argument("--k", type=int, default=5, help="knn: neighbours (default 5)")
+    f.add_argument("--jobs", type=int, default=None, help="ocsvm: threads over voxels (default: all cores)")
     f.add_argument("--quiet", action="store_true", help="no progress bars")
     a = _add(score, "apply", "score one case: standardised score map, ranked clusters, figures",
              "twinpatch score apply scorer/ --image T1w=t1.nii.gz --image FLAIR=flair.nii.gz --out case01/ "
@@ -331,7 +332,10 @@ def _cmd_score(args) -> None:
 
     progress = not args.quiet
     if args.score_command == "fit":
-        params = {"ocsvm": {"nu": args.nu, "gamma": _gamma(args.gamma)}, "gaussian": {}, "knn": {"k": args.k}}
+        if args.jobs is not None and args.jobs < 1:
+            raise InputError(f"--jobs {args.jobs}: expected a whole number >= 1")
+        params = {"ocsvm": {"nu": args.nu, "gamma": _gamma(args.gamma), "n_jobs": args.jobs}, "gaussian": {},
+                  "knn": {"k": args.k}}
         store, bundle = args.source, None
         if args.source.suffix == ".safetensors":
             if args.controls is None:

@@ -96,6 +96,10 @@ def test_score_cli_and_errors(fitted, tiny_manifest, tiny_run, tmp_path, capsys)
         score_fit(tmp_path / "s2", tmp_path / "sc2", progress=False)
     code = main(["score", "fit", str(tiny_run["bundle"]), "--out", str(tmp_path / "y")])
     assert code == 2 and "pass --controls MANIFEST" in capsys.readouterr().err
+    assert main(["score", "fit", str(fitted / "store"), "--out", str(tmp_path / "oc"), "--jobs", "1", "--quiet"]) == 0
+    assert json.loads((tmp_path / "oc" / "scorer.json").read_text())["params"]["n_jobs"] == 1
+    code = main(["score", "fit", str(fitted / "store"), "--out", str(tmp_path / "oc2"), "--jobs", "0", "--quiet"])
+    assert code == 2 and "--jobs 0" in capsys.readouterr().err
 
 
 def _two_controls(manifest, tmp_path):
