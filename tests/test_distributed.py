@@ -28,7 +28,12 @@ def _torchrun(manifest, out, nproc: int) -> subprocess.CompletedProcess:
     sets = [x for kv in SETS + [f'cohort.manifest="{manifest.as_posix()}"'] for x in ("--set", kv)]
     cmd = [sys.executable, "-m", "torch.distributed.run", "--nproc_per_node", str(nproc), "--standalone",
            "-m", "embed.cli", "train", "--quiet", "--out", str(out), *sets]
-    return subprocess.run(cmd, capture_output=True, text=True, timeout=300)
+    done = subprocess.run(cmd, capture_output=True, text=True, timeout=300)
+    # One retry for a rendezvous port taken by another process between torchrun's pick and bind
+    # (an environment race, not a twinpatch failure); any other failure is reported as is.
+    if done.returncode != 0 and any(k in done.stderr for k in ("Address already in use", "EADDRINUSE", "RendezvousError")):
+        done = subprocess.run(cmd, capture_output=True, text=True, timeout=300)
+    return done
 
 
 def _weights(run):
