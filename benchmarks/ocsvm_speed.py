@@ -10,17 +10,27 @@ Each round times, back to back, scikit-learn on a slice of the sample voxels (fi
 the ratio uses the median per-voxel time of each, in wall-clock time and in CPU time (the CPU
 ratio does not depend on how many cores are free). Compile time (numba) is excluded and printed.
 Also prints the largest difference between the two sets of decision values on the sample voxels,
-whether their signs agree, and the peak RSS of the process. Timings are wall-clock on a machine
-other people share: read the ratio, measured in one run, not the absolute times.
+whether their signs agree, whether the solvers took the same number of iterations, the peak RSS
+of the process and the load average before and after (other work on the machine slows both
+sides, the threaded side more). Timings are wall-clock on a machine other people share: read
+the ratio, measured in one run, not the absolute times.
 """
 
 from __future__ import annotations
 
-import argparse
-import resource
-import time
+import os
 
-import numpy as np
+# scikit-learn's libsvm takes its dot products from BLAS, on vectors of D = 64, where BLAS threads
+# cannot help: with the other core idle, the reference took about 500 us per voxel with one BLAS
+# thread and 850-900 us with two (measured once here; under load the two were alike). One thread
+# is the faster, stricter reference. VoxelOCSVM does not use BLAS. Set before numpy loads BLAS.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import argparse  # noqa: E402
+import resource  # noqa: E402
+import time  # noqa: E402
+
+import numpy as np  # noqa: E402
 
 
 def make_data(rng: np.random.Generator, S: int, V: int, D: int, M: int):
@@ -38,14 +48,17 @@ def make_data(rng: np.random.Generator, S: int, V: int, D: int, M: int):
     return controls.transpose(1, 0, 2), np.ascontiguousarray(cases.transpose(1, 0, 2))
 
 
-def sklearn_loop(controls, cases, voxels, nu, gamma):
-    """Decision values (M, len(voxels)) from one scikit-learn OneClassSVM per voxel."""
+def sklearn_loop(controls, cases, voxels, nu, gamma, n_iter=None):
+    """Decision values (M, len(voxels)) from one scikit-learn OneClassSVM per voxel (and its
+    solver's iteration counts into ``n_iter``, if given)."""
     from sklearn.svm import OneClassSVM
 
     out = np.empty((cases.shape[0], len(voxels)))
     for n, v in enumerate(voxels):
         model = OneClassSVM(kernel="rbf", nu=nu, gamma=gamma).fit(controls[:, v])
         out[:, n] = model.decision_function(cases[:, v])
+        if n_iter is not None:
+            n_iter[n] = np.ravel(model.n_iter_)[0]
     return out
 
 
@@ -71,7 +84,9 @@ def main() -> None:
     rng = np.random.default_rng(args.seed)
     controls, cases = make_data(rng, S, V, D, M)
     sample = np.sort(rng.choice(V, size=n_sample, replace=False))
-    print(f"data: {S} controls x {V} voxels x {D} dims (float32), {M} cases; sample of {n_sample} voxels")
+    print(f"data: {S} controls x {V} voxels x {D} dims (float32), {M} cases; sample of {n_sample} voxels; "
+          f"threads: {args.jobs or os.cpu_count()} (BLAS: {os.environ['OPENBLAS_NUM_THREADS']}); "
+          f"load average (1, 5, 15 min): {_load()}")
     rss_data = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # Linux: KiB
 
     t0 = time.perf_counter()
@@ -79,11 +94,14 @@ def main() -> None:
     print(f"numba compile / cache load: {time.perf_counter() - t0:.1f} s (excluded)")
 
     # agreement on the sample voxels
-    ref = sklearn_loop(controls, cases, sample, args.nu, gamma)
+    ref_iter = np.empty(n_sample, np.int64)
+    ref = sklearn_loop(controls, cases, sample, args.nu, gamma, ref_iter)
     ours = VoxelOCSVM(nu=args.nu, gamma=gamma, n_jobs=args.jobs).fit(controls[:, sample])
     dec = ours.decision_function(cases[:, sample])
     print(f"agreement on {n_sample} voxels x {M} cases: max |ours - scikit-learn| = "
-          f"{np.abs(dec - ref).max():.2e}, same sign everywhere: {bool((np.sign(dec) == np.sign(ref)).all())}")
+          f"{np.abs(dec - ref).max():.2e}, same sign everywhere: {bool((np.sign(dec) == np.sign(ref)).all())}, "
+          f"same solver iterations on {int((ours.n_iter_ == ref_iter).sum())}/{n_sample} voxels "
+          f"(mean {ref_iter.mean():.1f})")
 
     chunks = np.array_split(sample, args.rounds)
     wall = {"sk": [], "ours": [], "ours_sample": []}
@@ -114,6 +132,11 @@ def main() -> None:
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # Linux: KiB
     print(f"peak RSS: {peak:.0f} MiB (after making the data: {rss_data:.0f} MiB; input arrays: "
           f"{(controls.nbytes + cases.nbytes) / 2**20:.0f} MiB)")
+    print(f"load average (1, 5, 15 min) at the end: {_load()}")
+
+
+def _load() -> str:
+    return ", ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
 if __name__ == "__main__":

@@ -20,16 +20,18 @@ def _data(rng, S, V, D, M=4, dtype=np.float64):
     return controls.astype(dtype), cases.astype(dtype)
 
 
-def _sklearn(controls, cases, nu, gamma_per_voxel):
-    """Reference: scikit-learn OneClassSVM(kernel="rbf") per voxel -> decision (M, V), alpha (V, S), rho (V,)."""
+def _sklearn(controls, cases, nu, gamma_per_voxel, with_iter=False):
+    """Reference: scikit-learn OneClassSVM(kernel="rbf") per voxel -> decision (M, V), alpha (V, S), rho (V,)
+    (and the solver's iteration counts (V,) with ``with_iter``)."""
     S, V, _ = controls.shape
-    dec, alpha, rho = np.empty((cases.shape[0], V)), np.zeros((V, S)), np.empty(V)
+    dec, alpha, rho, n_iter = np.empty((cases.shape[0], V)), np.zeros((V, S)), np.empty(V), np.empty(V, np.int64)
     for v in range(V):
         m = OneClassSVM(kernel="rbf", nu=nu, gamma=gamma_per_voxel(v)).fit(controls[:, v])
         dec[:, v] = m.decision_function(cases[:, v])
         alpha[v, m.support_] = m.dual_coef_[0]
         rho[v] = -m.intercept_[0]
-    return dec, alpha, rho
+        n_iter[v] = np.ravel(m.n_iter_)[0]
+    return (dec, alpha, rho, n_iter) if with_iter else (dec, alpha, rho)
 
 
 @pytest.mark.parametrize("S, V, D, nu, gamma", [
@@ -54,13 +56,15 @@ def test_matches_sklearn_voxel_by_voxel(S, V, D, nu, gamma):
         ref_gamma = lambda v: "scale"  # noqa: E731
     else:
         ref_gamma = lambda v: gamma  # noqa: E731
-    dec_ref, alpha_ref, rho_ref = _sklearn(controls, cases, nu, ref_gamma)
+    dec_ref, alpha_ref, rho_ref, n_iter_ref = _sklearn(controls, cases, nu, ref_gamma, with_iter=True)
     dec = ours.decision_function(cases)
     # reference: sklearn.svm.OneClassSVM.decision_function; requirement <= 1e-4, same sign
     assert np.abs(dec - dec_ref).max() <= 1e-6
     assert (np.sign(dec) == np.sign(dec_ref)).all()
     np.testing.assert_allclose(ours.alpha_, alpha_ref, atol=1e-6)  # sklearn dual_coef_ on support_
     np.testing.assert_allclose(ours.rho_, rho_ref, atol=1e-6)  # sklearn intercept_ = -rho
+    # the same SMO path as libsvm: sklearn's n_iter_ (iterations of its solver) on every voxel
+    np.testing.assert_array_equal(ours.n_iter_, n_iter_ref)
     # score is minus the decision function (contract in ARCHITECTURE.md)
     np.testing.assert_array_equal(ours.score_many(cases), -dec)
     np.testing.assert_array_equal(ours.score(cases[1]), -dec[1])
@@ -86,6 +90,32 @@ def _sklearn_no_shrink(controls, cases, nu):
     for v in range(V):
         dec[:, v] = OneClassSVM(nu=nu, shrinking=False).fit(controls[:, v]).decision_function(cases[:, v])
     return dec, None, None
+
+
+def test_degenerate_voxels_match_sklearn():
+    # duplicated controls (zero curvature: libsvm's TAU branch) and a constant voxel (variance 0:
+    # scikit-learn's "scale" falls back to gamma = 1.0, sklearn/svm/_base.py)
+    rng = np.random.default_rng(13)
+    controls, cases = _data(rng, 14, 12, 5)
+    controls[7:, :6] = controls[:7, :6]  # every control twice at voxels 0-5
+    controls[:, 9] = 0.25
+    ours = VoxelOCSVM(nu=0.5).fit(controls)
+    assert ours.gamma_[9] == 1.0
+    dec_ref, _, _, n_iter_ref = _sklearn(controls, cases, 0.5, lambda v: "scale", with_iter=True)
+    dec = ours.decision_function(cases)
+    assert np.abs(dec - dec_ref).max() <= 1e-6 and (np.sign(dec) == np.sign(dec_ref)).all()
+    np.testing.assert_array_equal(ours.n_iter_, n_iter_ref)
+
+
+@pytest.mark.parametrize("S, D, M", [(9, 3, 11), (17, 13, 17), (2, 1, 1)])
+def test_odd_sizes_and_many_cases_match_sklearn(S, D, M):
+    # sizes that are not multiples of the 8-wide vectors, more than 8 cases per voxel, 2 controls
+    rng = np.random.default_rng(S + D + M)
+    controls, cases = _data(rng, S, 20, D, M=M)
+    ours = VoxelOCSVM(nu=0.45).fit(controls)
+    dec_ref, _, _ = _sklearn(controls, cases, 0.45, lambda v: "scale")
+    dec = ours.decision_function(cases)
+    assert np.abs(dec - dec_ref).max() <= 1e-6 and (np.sign(dec) == np.sign(dec_ref)).all()
 
 
 def test_float32_voxel_major_input_matches_sklearn():
