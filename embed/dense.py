@@ -149,12 +149,27 @@ class Encoder:
         return out
 
 
+def image_on_grid(data: np.ndarray, affine: np.ndarray, header):
+    """A NIfTI image of ``data`` with the input's ``affine`` and sform/qform codes (``header``).
+
+    When both codes are 0 (or there is no header) the sform code is set to 2 (NIfTI-1: with both
+    codes 0 readers ignore the affine; 2 = aligned to another scan).
+    """
+    import nibabel as nib
+
+    img = nib.Nifti1Image(data, affine)
+    sform_code = int(header["sform_code"]) if header is not None else 0
+    qform_code = int(header["qform_code"]) if header is not None else 0
+    img.set_sform(affine, code=sform_code if (sform_code or qform_code) else 2)
+    img.set_qform(affine, code=qform_code)
+    return img
+
+
 def write_embedding_map(path: str | Path, emb: np.ndarray, affine: np.ndarray, header, sidecar: dict) -> Path:
     """Write ``emb: (D, X, Y, Z)`` as a 4D NIfTI ``(X, Y, Z, D)`` float32 plus a JSON sidecar.
 
-    The affine and the sform/qform codes of ``header`` (the input's) are kept; when both codes
-    are 0 (or there is no header) the sform code is set to 2 so that readers use the affine. Both files are
-    written under a temporary name and renamed. The sidecar sits beside the image, with
+    The affine and the sform/qform codes of ``header`` (the input's) are kept
+    (:func:`image_on_grid`). Both files are written under a temporary name and renamed. The sidecar sits beside the image, with
     ``.json`` in place of ``.nii``/``.nii.gz``.
     """
     import json
@@ -163,13 +178,7 @@ def write_embedding_map(path: str | Path, emb: np.ndarray, affine: np.ndarray, h
 
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    img = nib.Nifti1Image(np.ascontiguousarray(np.moveaxis(emb, 0, -1), dtype=np.float32), affine)
-    sform_code = int(header["sform_code"]) if header is not None else 0
-    qform_code = int(header["qform_code"]) if header is not None else 0
-    if not (sform_code or qform_code):
-        sform_code = 2  # NIfTI-1: with both codes 0 readers ignore the affine; 2 = aligned to another scan
-    img.set_sform(affine, code=sform_code)
-    img.set_qform(affine, code=qform_code)
+    img = image_on_grid(np.ascontiguousarray(np.moveaxis(emb, 0, -1), dtype=np.float32), affine, header)
     img.header.set_intent("vector", (), name="embedding")
     suffix = ".nii.gz" if path.name.endswith(".nii.gz") else path.suffix
     stem = path.name[: -len(suffix)] if suffix else path.name

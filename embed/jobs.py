@@ -162,7 +162,7 @@ def grid_differences(card: dict, affine: np.ndarray, shape: tuple[int, ...]) -> 
     return diffs
 
 
-def _guard(encoder: Encoder, subject: Subject, where: str, allow_grid_mismatch: bool) -> dict | None:
+def grid_guard(encoder: Encoder, subject: Subject, where: str, allow_grid_mismatch: bool) -> dict | None:
     """Refuse a subject on another grid than the encoder's, unless overridden (then say what differs)."""
     diffs = grid_differences(encoder.card, subject.affine, subject.mask.shape)
     if diffs and not allow_grid_mismatch:
@@ -198,7 +198,7 @@ def embed_subject(bundle: str | Path, images: dict[str, Path], out: str | Path, 
         raise InputError(f"--image {extra_names[0]}: the encoder has no contrast of that name; "
                          f"its contrasts are {list(encoder.channel_names)}")
     subject = load_subject(ordered, mask=mask, normalisation=normalisation)
-    override = _guard(encoder, subject, str(ordered[encoder.channel_names[0]]), allow_grid_mismatch)
+    override = grid_guard(encoder, subject, str(ordered[encoder.channel_names[0]]), allow_grid_mismatch)
     extra = {"inputs": {c: str(p) for c, p in ordered.items()}, **(override or {})}
     return _embed_and_write(encoder, subject, Path(out), extra, progress, precision)
 
@@ -210,7 +210,7 @@ def store_mask(rows: list, grid_shape: tuple[int, ...], progress: bool = True) -
     """
     from tqdm.auto import tqdm
 
-    from .cohort import derive_mask, load_image
+    from .cohort import cohort_mask, derive_mask, load_image
 
     controls = [r for r in rows if r.role == "control"]
     if not controls:
@@ -227,7 +227,7 @@ def store_mask(rows: list, grid_shape: tuple[int, ...], progress: bool = True) -
             raise InputError(f"mask of subject {row.subject}: shape {m.shape} differs from the encoder's grid "
                              f"{tuple(grid_shape)}")
         votes += m
-    return 2 * votes >= len(controls)
+    return cohort_mask(votes, len(controls), "store mask")
 
 
 def embed_store(bundle: str | Path, manifest: str | Path, out: str | Path, *, shard: tuple[int, int] = (1, 1),
@@ -255,13 +255,14 @@ def embed_store(bundle: str | Path, manifest: str | Path, out: str | Path, *, sh
         raise InputError(f"--shard {index}/{count}: expected I/N with 1 <= I <= N, e.g. --shard 1/4")
     out = Path(out)
     grid = encoder.card.get("grid", {})
+    shape = tuple(grid.get("shape", ())) or _first_shape(rows)
     if (out / "store.json").exists():
         voxels = np.load(out / "voxels.npy")
     else:
         if mask is not None:
             m = np.asarray(load_image(mask, "store mask").dataobj) != 0
         else:
-            m = store_mask(rows, tuple(grid.get("shape", ())) or _first_shape(rows), progress)
+            m = store_mask(rows, shape, progress)
         if not m.any():
             raise InputError(f"the store mask is empty ({mask or 'controls common brain'}); check the masks")
         voxels = np.argwhere(m)
@@ -270,7 +271,7 @@ def embed_store(bundle: str | Path, manifest: str | Path, out: str | Path, *, sh
                 "mask": str(mask) if mask else "controls (majority)"}
     st.create(out, subjects=[r.subject for r in rows], roles=[r.role for r in rows], voxels=voxels,
               dim=encoder.dim, dtype=dtype, grid=grid, producer=producer)
-    vmask = np.zeros(tuple(grid.get("shape", ())) or _first_shape(rows), bool)
+    vmask = np.zeros(shape, bool)
     vmask[tuple(voxels.T)] = True
     normalisation = encoder.card.get("normalisation") or "zscore"
     mine = rows[index - 1::count]
@@ -281,7 +282,7 @@ def embed_store(bundle: str | Path, manifest: str | Path, out: str | Path, *, sh
         ordered = {c: row.images[c] for c in encoder.channel_names}
         subject = load_subject(ordered, subject=row.subject, role=row.role, mask=row.mask,
                                normalisation=normalisation)
-        override = _guard(encoder, subject, f"subject {row.subject}", allow_grid_mismatch)
+        override = grid_guard(encoder, subject, f"subject {row.subject}", allow_grid_mismatch)
         if subject.mask.shape != vmask.shape:
             raise InputError(f"subject {row.subject}: grid {subject.mask.shape} differs from the store's {vmask.shape}")
         emb = encoder.embed_masked(subject.data, vmask, precision=precision)

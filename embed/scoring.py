@@ -30,6 +30,7 @@ from . import __version__
 from .bundle import load_encoder
 from .clusters import find_clusters, threshold, write_clusters_csv
 from .cohort import load_subject
+from .dense import image_on_grid
 from .errors import InputError
 from .files import atomic, write_json
 from .report import CAUTION, cluster_figure
@@ -89,11 +90,8 @@ def _load_scorer_dir(path: Path) -> tuple[dict, Standardiser]:
 
 
 def _write_map(path: Path, data: np.ndarray, subject, dtype) -> None:
-    img = nib.Nifti1Image(data.astype(dtype), subject.affine)
-    img.set_sform(subject.affine, code=int(subject.header["sform_code"]) or 2)
-    img.set_qform(subject.affine, code=int(subject.header["qform_code"]))
     with atomic(path) as tmp:
-        nib.save(img, tmp)
+        nib.save(image_on_grid(data.astype(dtype), subject.affine, subject.header), tmp)
 
 
 def score_apply(scorer_dir: str | Path, images: dict[str, Path], out: str | Path, *, mask: str | Path | None = None,
@@ -105,7 +103,7 @@ def score_apply(scorer_dir: str | Path, images: dict[str, Path], out: str | Path
     Threshold: ``value`` (standardised score) or ``top_fraction`` of the store's voxels; default
     ``top_fraction=0.01``. Returns a summary dict (also written as ``summary.json``).
     """
-    from .jobs import _guard  # the grid guard shared with `embed`
+    from .jobs import grid_guard  # the grid guard shared with `embed`
 
     scorer_dir, out = Path(scorer_dir), Path(out)
     meta, standardiser = _load_scorer_dir(scorer_dir)
@@ -121,7 +119,7 @@ def score_apply(scorer_dir: str | Path, images: dict[str, Path], out: str | Path
     ordered = {c: Path(images[c]) for c in encoder.channel_names}
     normalisation = encoder.card.get("normalisation") or "zscore"
     subject = load_subject(ordered, subject=name, mask=mask, normalisation=normalisation)
-    override = _guard(encoder, subject, str(ordered[encoder.channel_names[0]]), allow_grid_mismatch)
+    override = grid_guard(encoder, subject, str(ordered[encoder.channel_names[0]]), allow_grid_mismatch)
     vmask = np.zeros(subject.mask.shape, bool)
     vmask[tuple(store.voxels.T)] = True
     emb = encoder.embed_masked(subject.data, vmask, progress=progress)  # (V, D), store voxel order
