@@ -31,7 +31,8 @@ EARLY_STOP = ("none", "total", "reconstruction", "retrieval", "cos_gap")
 class CohortConfig:
     manifest: str = "demo_data/manifest.csv"  # a manifest.csv, or a cache folder written by `twinpatch prepare`
     normalisation: str = "zscore"
-    val_controls: int = 3  # controls held out of training, for validation pairs
+    val_controls: int = 3  # controls held out of training, for validation pairs (and the bench)
+    split_seed: int = 0  # which controls are held out; apart from train.seed, so seeds share one split
 
 
 @dataclass(frozen=True)
@@ -96,6 +97,7 @@ class Config:
 _RULES: dict[str, tuple[Any, str]] = {
     "cohort.normalisation": (lambda v: v in NORMALISATIONS, f"one of {NORMALISATIONS}"),
     "cohort.val_controls": (lambda v: v >= 2, "an integer >= 2 (a validation pair needs two controls)"),
+    "cohort.split_seed": (lambda v: v >= 0, "an integer >= 0"),
     "patch.size": (lambda v: v >= 3 and v % 2 == 1, "an odd integer >= 3"),
     "patch.plane": (lambda v: v in PLANES, f"one of {PLANES}"),
     "model.channels": (lambda v: len(v) >= 1 and all(c >= 1 for c in v), "a non-empty list of positive integers"),

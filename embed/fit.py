@@ -238,7 +238,7 @@ def _train(cfg: Config, cohort: Cohort, run_dir: Path, axis: int, progress: bool
     main = rank == 0
     p, tc, lc = cfg.patch.size, cfg.train, cfg.loss
     train_idx, val_idx = split_controls(cohort.indices("control"), cfg.cohort.val_controls,
-                                        np.random.default_rng(tc.seed))
+                                        np.random.default_rng(cfg.cohort.split_seed))
     voxels = np.argwhere(cohort.mask)
     val = sample_pairs(cohort.data, val_idx, voxels, tc.val_pairs, p, axis, np.random.default_rng([tc.seed, 1]))
     retrieval = sample_retrieval(cohort.data, int(val_idx[0]), int(val_idx[1]), voxels, tc.retrieval_voxels, p,

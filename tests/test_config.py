@@ -241,6 +241,7 @@ BAD = [
     ("cohort.normalisation", "minmax", rf"one of {re.escape(str(('zscore', 'histogram')))}"),
     ("cohort.val_controls", 1, r"an integer >= 2 \(a validation pair needs two controls\)"),
     ("cohort.val_controls", 0, r"an integer >= 2 \(a validation pair needs two controls\)"),
+    ("cohort.split_seed", -1, "an integer >= 0"),
     ("patch.size", 4, "an odd integer >= 3"),
     ("patch.size", 1, "an odd integer >= 3"),
     ("patch.plane", "oblique", re.escape(f"one of {PLANES}")),
@@ -274,6 +275,7 @@ BAD = [
 EDGE = [
     ("cohort.normalisation", "zscore"),
     ("cohort.val_controls", 2),
+    ("cohort.split_seed", 0),
     ("patch.size", 3),
     ("patch.plane", "sagittal"),
     ("model.channels", [1]),
