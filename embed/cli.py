@@ -1,4 +1,5 @@
 """The ``twinpatch`` command. Thin: parse arguments, call :mod:`embed.jobs`, print where things are.
+The evaluation commands (bench, sweep, report) live in :mod:`embed.cli_eval`.
 
 Exit codes: 0 success; 2 bad input (one line on stderr naming the file or key, what was found and
 the fix; no traceback); 130 interrupted with Ctrl-C.
@@ -10,7 +11,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from . import __version__
+from . import __version__, cli_eval
 from .errors import InputError, TwinpatchError
 
 RESEARCH_NOTE = ("research use only: not a diagnostic device; findings need expert review "
@@ -166,6 +167,7 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--name", default="case", help="subject name for titles and the summary")
     a.add_argument("--allow-grid-mismatch", action="store_true")
     a.add_argument("--quiet", action="store_true", help="no progress bars")
+    cli_eval.add_commands(sub, _add)
     return parser
 
 
@@ -369,7 +371,7 @@ def _gamma(text: str):
 
 
 COMMANDS = {"synth": _cmd_synth, "prepare": _cmd_prepare, "qc": _cmd_qc, "train": _cmd_train, "export": _cmd_export, "inspect": _cmd_inspect,
-            "embed": _cmd_embed, "score": _cmd_score}
+            "embed": _cmd_embed, "score": _cmd_score, **cli_eval.COMMANDS}
 
 
 def main(argv: list[str] | None = None) -> int:

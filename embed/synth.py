@@ -220,6 +220,26 @@ def inject_lesion(tissue: dict, flair_gain: np.ndarray, mask: np.ndarray,
     return new, gain, lesion_mask
 
 
+def lesion_sites(tissue: dict, mask: np.ndarray, margin: int) -> np.ndarray:
+    """(X, Y, Z) bool: grey-white boundary voxels (GM and WM fractions both in 0.2..0.8) inside
+    ``mask`` and at least ``margin`` voxels from the grid edge: where lesions are centred."""
+    gm, wm = tissue["gm"], tissue["wm"]
+    cand = mask & (gm >= 0.2) & (gm <= 0.8) & (wm >= 0.2) & (wm <= 0.8)
+    inner = np.zeros_like(cand)
+    inner[tuple(slice(margin, s - margin) for s in cand.shape)] = True
+    return cand & inner
+
+
+def pick_site(cand: np.ndarray, rng: np.random.Generator, what: str, margin: int) -> tuple[int, int, int]:
+    """One voxel of ``cand`` drawn uniformly; InputError when there is none."""
+    idx = np.flatnonzero(cand)
+    if idx.size == 0:
+        raise InputError(f"no room for {what}: no grey-white boundary voxel (GM and WM both "
+                         f"in 0.2..0.8) at least {margin} voxels from the grid edge and other lesions; "
+                         "use fewer or smaller lesions or a finer grid")
+    return tuple(int(v) for v in np.unravel_index(idx[rng.integers(idx.size)], cand.shape))
+
+
 def draw_lesion(tissue: dict, mask: np.ndarray, kind: str, voxel_size: float, rng: np.random.Generator,
                 placed: tuple = ()) -> tuple[Lesion, float]:
     """Draw a lesion of ``kind`` on a grey-white boundary voxel (GM and WM both in 0.2..0.8) at a
@@ -229,19 +249,10 @@ def draw_lesion(tissue: dict, mask: np.ndarray, kind: str, voxel_size: float, rn
     radius_vox = max(radius_mm / voxel_size, MIN_RADIUS_VOX)
     a, sigma, t = (float(rng.uniform(*r)) for r in (FLAIR_GAIN, BLUR_SIGMA_VOX, THICKENING_VOX))
     margin = int(np.ceil(radius_vox + 4 * sigma + t)) + 1
-    gm, wm = tissue["gm"], tissue["wm"]
-    cand = mask & (gm >= 0.2) & (gm <= 0.8) & (wm >= 0.2) & (wm <= 0.8)
-    inner = np.zeros_like(cand)
-    inner[tuple(slice(margin, s - margin) for s in cand.shape)] = True
-    cand &= inner
+    cand = lesion_sites(tissue, mask, margin)
     for other in placed:
         cand &= lesion_weight(cand.shape, other.centre_vox, other.radius_vox + radius_vox) == 0
-    idx = np.flatnonzero(cand)
-    if idx.size == 0:
-        raise InputError(f"no room for a {kind!r} lesion: no grey-white boundary voxel (GM and WM both "
-                         f"in 0.2..0.8) at least {margin} voxels from the grid edge and other lesions; "
-                         "use fewer lesions per case or a finer grid")
-    centre = tuple(int(v) for v in np.unravel_index(idx[rng.integers(idx.size)], cand.shape))
+    centre = pick_site(cand, rng, f"a {kind!r} lesion", margin)
     lesion = Lesion(kind=kind, centre_vox=centre, radius_vox=radius_vox,
                     flair_gain=a if kind in ("flair", "mixed") else 0.0,
                     blur_sigma_vox=sigma if kind in ("blurring", "mixed") else 0.0,
