@@ -76,6 +76,7 @@ class TrainConfig:
     retrieval_voxels: int = 256  # held-out voxels for the co-location retrieval score
     projector_points: int = 512  # validation embeddings written for the TensorBoard projector; 0 = none
     init: str = ""  # encoder bundle to start from (--init BUNDLE); "" = random initialisation
+    input_noise: float = 0.0  # sd of Gaussian noise added to the encoder's input (denoising); 0 = off
 
 
 @dataclass(frozen=True)
@@ -111,6 +112,7 @@ _RULES: dict[str, tuple[Any, str]] = {
     "train.steps": (lambda v: v >= 1, "an integer >= 1"),
     "train.batch_size": (lambda v: v >= 2, "an integer >= 2 (random pairs need two patches)"),
     "train.lr": (lambda v: v > 0, "a number > 0"),
+    "train.input_noise": (lambda v: v >= 0, "a number >= 0 (0 = no denoising)"),
     "train.seed": (lambda v: v >= 0, "an integer >= 0"),
     "train.val_every": (lambda v: v >= 1, "an integer >= 1"),
     "train.val_pairs": (lambda v: v >= 2, "an integer >= 2"),

@@ -295,7 +295,8 @@ def _train(cfg: Config, cohort: Cohort, run_dir: Path, axis: int, progress: bool
                 batch = sample_pairs(cohort.data, train_idx, voxels, n, p, axis,
                                      np.random.default_rng([tc.seed, 2, step, rank]))
                 a, b = torch.from_numpy(batch.a), torch.from_numpy(batch.b)
-                z1, z2, r1, r2 = forward_pair(model, a, b, tc.precision)
+                z1, z2, r1, r2 = forward_pair(model, *noisy(a, b, tc.input_noise, [tc.seed, 5, step, rank]),
+                                              tc.precision)
                 terms = pair_loss(a, b, r1, r2, z1, z2, w, space, lc.reconstruction, lc.reconstruction_weight)
                 if lc.mmd_weight > 0:
                     both = torch.cat([z1, z2])
@@ -375,6 +376,15 @@ def _validate_step(model, val, retrieval, w, cfg, monitor, state, step, directio
         return False, z1
     state["bad"] += 1
     return state["bad"] >= cfg.train.patience, z1
+
+
+def noisy(a: torch.Tensor, b: torch.Tensor, sd: float, seed: list) -> tuple[torch.Tensor, torch.Tensor]:
+    """The encoder's inputs: ``a``, ``b`` plus Gaussian noise of ``sd`` (a denoising autoencoder: the
+    reconstruction target stays the clean patch). Seeded per step, so a resumed run draws the same noise."""
+    if sd <= 0:
+        return a, b
+    rng = np.random.default_rng(seed)
+    return tuple(x + torch.from_numpy(rng.standard_normal(x.shape, dtype=np.float32) * np.float32(sd)) for x in (a, b))
 
 
 def run_card(cfg: Config, cohort: Cohort, axis: int, train_idx, val_idx, result: TrainResult, state: dict) -> dict:

@@ -205,3 +205,20 @@ def test_training_config_rules_reject(key, value, want):
 def test_training_config_rules_accept_edge(key, value):
     section, name = key.split(".")
     assert getattr(getattr(from_dict({section: {name: value}}), section), name) == value
+
+
+def test_denoising_input_noise_is_seeded_and_leaves_targets_alone():
+    """train.input_noise: the encoder sees x + N(0, sd^2) noise drawn from the step's seed."""
+    import torch
+
+    from embed.fit import noisy
+
+    a, b = torch.zeros(4000, 2, 5, 5), torch.ones(4000, 2, 5, 5)
+    assert noisy(a, b, 0.0, [0, 5, 1, 0]) == (a, b)  # off: the very same tensors
+    na, nb = noisy(a, b, 0.3, [0, 5, 1, 0])
+    assert float(na.std()) == pytest.approx(0.3, rel=0.02) and float((nb - 1).mean()) == pytest.approx(0, abs=0.01)
+    assert not torch.equal(na, nb - 1)  # independent noise for the two patches
+    again = noisy(a, b, 0.3, [0, 5, 1, 0])
+    assert torch.equal(again[0], na) and torch.equal(again[1], nb)  # same step seed, same noise (exact resume)
+    assert not torch.equal(noisy(a, b, 0.3, [0, 5, 2, 0])[0], na)
+    assert float(a.abs().max()) == 0 and float(b.min()) == 1  # inputs (the reconstruction targets) untouched
