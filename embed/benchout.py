@@ -57,7 +57,8 @@ def table_md(metrics: dict, kinds: tuple | None = None) -> str:
 
 def write_outputs(out: Path, metrics: dict, cohort, heldout: list[int], cases: list, maps: dict) -> dict:
     """Write the bench folder; returns ``metrics`` with the figure list filled in."""
-    from .report import CAUTION, contrast_figure, example_figure, sensitivity_figure
+    from .figures import contrast_figure, example_figure, sensitivity_figure
+    from .report import CAUTION
 
     out.mkdir(parents=True, exist_ok=True)
     metrics = {"kind": metrics["kind"], "caution": CAUTION, **{k: v for k, v in metrics.items() if k != "kind"}}

@@ -17,7 +17,7 @@ import numpy as np
 from . import __version__
 from .errors import InputError
 from .files import atomic, write_json, write_text
-from .sweep import BUNDLE, RunSpec, Sweep, _read_json, fmt_value, load_sweep, plan, short_names
+from .sweepplan import BUNDLE, RunSpec, Sweep, _read_json, fmt_value, load_sweep, plan, short_names
 
 
 def method_values(metrics: dict, metric: str, kinds: tuple, where: Path) -> dict:

@@ -13,7 +13,7 @@ import pytest
 from PIL import Image
 from scipy import ndimage
 
-from embed import report
+from embed import figures, report
 from embed.errors import InputError
 
 ODD = "x<y & z"  # a method name that must be escaped in the page
@@ -76,17 +76,17 @@ def _png(path):
 def test_sensitivity_curve_equals_hand_count():
     metrics = make_metrics()
     for (method, kind), expected in HAND.items():
-        assert report.sensitivity_curve(metrics, method, kind) == pytest.approx(expected)
-    assert all(np.isnan(report.sensitivity_curve(metrics, "embedding", "geometry")))  # no such lesion
+        assert figures.sensitivity_curve(metrics, method, kind) == pytest.approx(expected)
+    assert all(np.isnan(figures.sensitivity_curve(metrics, "embedding", "geometry")))  # no such lesion
 
 
 def test_contrast_curve_bins_in_order_and_summary_first():
     metrics = make_metrics()
     # texture: L1 low (rank 1), L2 high (none), L3 low (rank 4) -> low 2/2, high 0/1 at k = 10
-    assert report.contrast_curve(metrics, "embedding", "texture", 10) == (["low", "high"], [1.0, 0.0])
-    assert report.contrast_curve(metrics, ODD, "texture", 3) == (["low", "high"], [0.0, 1.0])
+    assert figures.contrast_curve(metrics, "embedding", "texture", 10) == (["low", "high"], [1.0, 0.0])
+    assert figures.contrast_curve(metrics, ODD, "texture", 3) == (["low", "high"], [0.0, 1.0])
     metrics["summary"].append(_row("embedding", "texture", "contrast", "low", sens=(0.1, 0.2, 0.3, 0.4)))
-    assert report.contrast_curve(metrics, "embedding", "texture", 10) == (["low", "high"], [0.4, 0.0])
+    assert figures.contrast_curve(metrics, "embedding", "texture", 10) == (["low", "high"], [0.4, 0.0])
 
 
 def test_sensitivity_figure_plots_the_hand_counts(tmp_path, monkeypatch):
@@ -98,7 +98,7 @@ def test_sensitivity_figure_plots_the_hand_counts(tmp_path, monkeypatch):
         return original(ax, x, y, *args, **kwargs)
 
     monkeypatch.setattr(matplotlib.axes.Axes, "errorbar", spy)
-    out = report.sensitivity_figure(make_metrics(), tmp_path / "sensitivity.png")
+    out = figures.sensitivity_figure(make_metrics(), tmp_path / "sensitivity.png")
     _png(out)
     order = [(m, kind) for kind in ("texture", "intensity", "all") for m in ("embedding", ODD)]
     assert [d[0] for d in drawn] == [m for m, _ in order]
@@ -122,7 +122,7 @@ def test_contrast_figure_bars(tmp_path, monkeypatch):
         return original(ax, x, height, *args, **kwargs)
 
     monkeypatch.setattr(matplotlib.axes.Axes, "bar", spy)
-    out = report.contrast_figure(make_metrics(), tmp_path / "contrast.png", k=10)
+    out = figures.contrast_figure(make_metrics(), tmp_path / "contrast.png", k=10)
     _png(out)
     # texture (low, high) then intensity (low, high); hand counts at k = 10 from RANKS
     assert heights == [[1.0, 0.0], [0.5, 1.0], [1.0, 0.0], [0.0, 1.0]]
@@ -144,19 +144,19 @@ def _volumes():
 
 def test_example_figure_png_and_crop(tmp_path):
     background, score, lesion, labels = _volumes()
-    out = report.example_figure(tmp_path / "ex.png", background, score, lesion, labels, (10, 12, 9), "L1 <embedding>")
+    out = figures.example_figure(tmp_path / "ex.png", background, score, lesion, labels, (10, 12, 9), "L1 <embedding>")
     _png(out)
     # the crop box is the brain's bounding box (reference: scipy.ndimage.find_objects)
     (box,) = ndimage.find_objects((background != 0).astype(int))
-    assert report._brain_box(background, (10, 12, 9)) == [(s.start, s.stop) for s in box]
+    assert figures._brain_box(background, (10, 12, 9)) == [(s.start, s.stop) for s in box]
 
 
 def test_example_figure_bad_input(tmp_path):
     background, score, lesion, labels = _volumes()
     with pytest.raises(InputError, match="labels has shape .* but background has"):
-        report.example_figure(tmp_path / "ex.png", background, score, lesion, labels[:-1], (10, 12, 9), "t")
+        figures.example_figure(tmp_path / "ex.png", background, score, lesion, labels[:-1], (10, 12, 9), "t")
     with pytest.raises(InputError, match=r"centre \(10, 30, 9\) is outside the grid"):
-        report.example_figure(tmp_path / "ex.png", background, score, lesion, labels, (10, 30, 9), "t")
+        figures.example_figure(tmp_path / "ex.png", background, score, lesion, labels, (10, 30, 9), "t")
 
 
 def _images(page):
@@ -165,8 +165,8 @@ def _images(page):
 
 def test_bench_page(tmp_path):
     metrics = make_metrics()
-    report.sensitivity_figure(metrics, tmp_path / "sensitivity.png")
-    report.contrast_figure(metrics, tmp_path / "contrast.png")
+    figures.sensitivity_figure(metrics, tmp_path / "sensitivity.png")
+    figures.contrast_figure(metrics, tmp_path / "contrast.png")
     (tmp_path / "metrics.json").write_text(json.dumps(metrics))
     out = report.write_html(tmp_path)
     assert out == tmp_path / "report.html"
