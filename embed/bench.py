@@ -51,7 +51,7 @@ from .bundle import load_encoder
 from .clusters import find_clusters
 from .detection import first_hit_rank, summarise, voxel_metrics
 from .errors import ConfigError, InputError
-from .features import FeatureSet, baseline_sets, encoder_sets, region_features
+from .features import FeatureSet, baseline_sets, block_scales, encoder_sets, region_features
 from .implant import BENCH_KINDS, Case, flair_index, make_cases
 from .scorers import Standardiser, loo_scores, make_scorer
 from .scorers.normalise import loo_moments
@@ -354,6 +354,9 @@ def run_bench(bundles: dict, cohort: str | Path, out: str | Path, *, baselines: 
         t1 = time.perf_counter()
         fit, held = _whole_features(m.features, cohort, fit_idx, heldout, vmask, cache)
         queries = _queries(m, cohort, heldout, cases, vmask, vindex)
+        if m.features.parts:  # a concatenation: blocks weighed equally
+            scale = block_scales(m.features, fit)
+            fit, held, queries = fit * scale, held * scale, [(i, f * scale) for i, f in queries]
         if m.scoring == "ocsvm":
             held_scores, q_scores = _score_ocsvm(fit, held, queries, s, progress, m.name)
         else:

@@ -11,7 +11,10 @@ Sets:
 - ``texture``: hand-made local texture per contrast: intensity, standard deviation in the 3x3x3
   window, gradient magnitude (central differences, ``np.gradient``); D = 3C, reach 1.
 - an encoder: its embedding (D = encoder.dim, reach = half the patch in the patch plane).
-- an encoder + intensities: both concatenated (D = encoder.dim + C).
+- an encoder + intensities: both concatenated (D = encoder.dim + C), each block scaled by
+  :func:`block_scales` so that both weigh the same in a distance (the embedding has many more
+  dimensions, on another scale; standardising blocks before concatenating is common practice, no
+  source).
 """
 
 from __future__ import annotations
@@ -84,6 +87,20 @@ def encoder_sets(name: str, encoder: Encoder, precision: str = "fp32") -> list[F
     return [alone, FeatureSet(f"{name}+intensities", "encoder", "learned embedding and the intensities, concatenated",
                               encoder.dim + encoder.in_channels, reach, concat,
                               parts=(alone, baseline_sets(encoder.in_channels)[0]))]
+
+
+def block_scales(fs: FeatureSet, fit: np.ndarray) -> np.ndarray:
+    """(D,) float32 column scales for a concatenation ``fs`` (``fs.parts``): each part's columns are
+    divided by the square root of that part's total variance (sum over its dimensions of the
+    variance over every fit control and voxel), so each block has total variance 1.
+    fit: (S, V, D) the fit controls' features of ``fs``."""
+    scales, start = [], 0
+    for part in fs.parts:
+        block = fit[..., start:start + part.dim].reshape(-1, part.dim).astype(np.float64)
+        total = float(block.var(axis=0).sum())
+        scales += [1.0 / np.sqrt(total) if total > 0 else 1.0] * part.dim
+        start += part.dim
+    return np.asarray(scales, dtype=np.float32)
 
 
 def grow(box: tuple, by: tuple[int, int, int], shape: tuple[int, int, int]) -> tuple:

@@ -147,3 +147,22 @@ def test_cli_bench_errors(tmp_path, tiny_manifest, capsys):
     assert "expected KEY=VALUE" in capsys.readouterr().err
     assert main(["report", str(tmp_path)]) == 2
     assert "neither a bench folder" in capsys.readouterr().err
+
+
+def test_cli_settings_and_bundle_names(tmp_path):
+    from embed.cli_eval import parse_bundles, parse_settings
+
+    got = parse_settings(["repeats=1", 'kinds=["texture", "mixed"]', "top_fraction=0.02", "flair_contrast=FLAIR",
+                          "radii_mm=[4.0]"])
+    assert got == {"repeats": 1, "kinds": ["texture", "mixed"], "top_fraction": 0.02, "flair_contrast": "FLAIR",
+                   "radii_mm": [4.0]}  # TOML values; a bare word stays a string
+    with pytest.raises(ConfigError, match=r"expected KEY=VALUE"):
+        parse_settings(["=3"])
+    run = tmp_path / "runs" / "site_v1"
+    run.mkdir(parents=True)
+    (run / "encoder.safetensors").write_bytes(b"x")
+    (tmp_path / "plain.safetensors").write_bytes(b"x")
+    assert parse_bundles([str(run / "encoder.safetensors"), f"b={tmp_path / 'plain.safetensors'}"]) == \
+        {"site_v1": run / "encoder.safetensors", "b": tmp_path / "plain.safetensors"}
+    with pytest.raises(InputError, match=r"two bundles are called 'b'"):
+        parse_bundles([f"b={tmp_path / 'plain.safetensors'}", f"b={run / 'encoder.safetensors'}"])

@@ -158,3 +158,18 @@ def test_a_change_inside_the_box_alters_only_voxels_within_reach(base, where):
         if fs.name != "intensities":  # the reach is not larger than needed: its rim changes too
             rim = mask & within_reach(box, fs.reach) & ~within_reach(box, tuple(max(r - 1, 0) for r in fs.reach))
             assert differs[rim].any(), fs.name
+
+
+def test_block_scales_give_each_part_unit_total_variance():
+    """A concatenation's blocks weigh the same: after scaling, each block's total variance is 1."""
+    from embed.features import FeatureSet, block_scales
+
+    def part(name, dim):
+        return FeatureSet(name, "baseline", "", dim, (0, 0, 0), lambda v, m: None)
+
+    rng = np.random.default_rng(0)
+    fit = np.concatenate([5 * rng.standard_normal((4, 30, 6)), 0.1 * rng.standard_normal((4, 30, 2))], axis=-1)
+    cat = FeatureSet("a+b", "encoder", "", 8, (0, 0, 0), lambda v, m: None, parts=(part("a", 6), part("b", 2)))
+    scaled = fit * block_scales(cat, fit)
+    for block in (scaled[..., :6], scaled[..., 6:]):
+        assert block.reshape(-1, block.shape[-1]).var(axis=0).sum() == pytest.approx(1.0, rel=1e-5)
