@@ -84,10 +84,15 @@ def _finish(fig, axes, ylabel: str, title: str, path) -> Path:
 
 def sensitivity_curve(metrics: dict, method: str, kind: str) -> list[float]:
     """Sensitivity at each k of ``metrics["ks"]`` for one method and lesion kind (``"all"``: every
-    lesion): the share of that kind's lesions whose per-lesion ``rank`` is not null and <= k.
-    NaN when no lesion has that kind."""
+    lesion): the summary row's mean when present (the bench computed it), else the share of that
+    kind's lesions whose per-lesion ``rank`` is not null and <= k. NaN when no lesion has that kind."""
     lesions = _lesions(metrics, kind)
-    return [_found(metrics, method, lesions, int(k)) for k in metrics["ks"]]
+    row = _row(metrics, method, kind, "all", "all") or {}
+    out = []
+    for k in metrics["ks"]:
+        v = row.get(f"sens@{int(k)}")
+        out.append(float(v[0]) if lesions and v and v[0] is not None else _found(metrics, method, lesions, int(k)))
+    return out
 
 
 def contrast_curve(metrics: dict, method: str, kind: str, k: int = 10) -> tuple[list, list[float]]:

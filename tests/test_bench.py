@@ -166,3 +166,14 @@ def test_cli_settings_and_bundle_names(tmp_path):
         {"site_v1": run / "encoder.safetensors", "b": tmp_path / "plain.safetensors"}
     with pytest.raises(InputError, match=r"two bundles are called 'b'"):
         parse_bundles([f"b={tmp_path / 'plain.safetensors'}", f"b={run / 'encoder.safetensors'}"])
+
+
+def test_summary_sensitivity_equals_a_count_of_the_ranks(bench):
+    """The bench's summary sens@k (what figures plot) is the share of lesions ranked <= k."""
+    from embed.figures import sensitivity_curve
+
+    _, m = bench
+    for method in m["results"]:
+        ranks = [m["results"][method]["per_lesion"][les["id"]]["rank"] for les in m["lesions"]]
+        counted = [np.mean([r is not None and r <= k for r in ranks]) for k in m["ks"]]
+        assert sensitivity_curve(m, method, "all") == pytest.approx(counted)
