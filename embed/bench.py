@@ -40,7 +40,7 @@ not establish clinical performance.
 from __future__ import annotations
 
 import time
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass
 from pathlib import Path
 
 import numpy as np
@@ -48,72 +48,18 @@ from tqdm.auto import tqdm
 
 from . import __version__
 from .bundle import load_encoder
+from .benchsettings import BenchSettings
 from .clusters import find_clusters
 from .detection import first_hit_rank, summarise, voxel_metrics
-from .errors import ConfigError, InputError
+from .errors import InputError
 from .features import FeatureSet, baseline_sets, block_scales, encoder_sets, region_features
-from .implant import BENCH_KINDS, Case, flair_index, make_cases
+from .implant import Case, flair_index, make_cases
 from .scorers import Standardiser, loo_scores, make_scorer
 from .scorers.normalise import loo_moments
 
 BLOCK_VOXELS = 4096
 SMALL_N = ("Small numbers: a few held-out controls and a few dozen synthetic lesions per kind. Intervals are "
            "95 % percentile-bootstrap intervals over lesions; differences inside them are not findings.")
-
-
-@dataclass(frozen=True)
-class BenchSettings:
-    """Bench settings (TOML/JSON-friendly). levels: kind -> lesion strengths (see implant.plan_lesion)."""
-    seed: int = 0
-    kinds: tuple = tuple(BENCH_KINDS)
-    radii_mm: tuple = (5.0, 10.0)
-    levels: dict = field(default_factory=lambda: {"intensity": [0.05, 0.15], "texture": [2.0, 4.0],
-                                                  "geometry": [2.0, 4.0], "mixed": [2.0, 4.0]})
-    repeats: int = 2
-    heldout: tuple = ()
-    scorer: str = "ocsvm"
-    top_fraction: float = 0.01
-    connectivity: int = 26
-    ks: tuple = (1, 3, 5, 10)
-    n_boot: int = 2000
-    examples: int = 1
-    tissue_contrast: str = ""
-    flair_contrast: str = ""
-    precision: str = "fp32"
-    normalisation: str = "zscore"
-
-    @classmethod
-    def from_dict(cls, d: dict | None) -> "BenchSettings":
-        d = dict(d or {})
-        names = {f.name for f in fields(cls)}
-        bad = sorted(set(d) - names)
-        if bad:
-            raise ConfigError(f"bench settings: unknown key {bad[0]!r}; valid keys are {', '.join(sorted(names))}")
-        for k in ("kinds", "radii_mm", "heldout", "ks"):
-            if k in d:
-                d[k] = tuple(d[k])
-        if "levels" in d:
-            d["levels"] = {**cls().levels, **dict(d["levels"])}
-        s = cls(**d)
-        s.check()
-        return s
-
-    def check(self) -> None:
-        def need(ok, key, what):
-            if not ok:
-                raise ConfigError(f"bench settings: {key}={getattr(self, key)!r} must be {what}")
-        need(self.kinds and all(k in BENCH_KINDS for k in self.kinds), "kinds", f"a non-empty list of {list(BENCH_KINDS)}")
-        need(self.radii_mm and all(isinstance(r, (int, float)) and r > 0 for r in self.radii_mm), "radii_mm",
-             "a non-empty list of positive numbers")
-        need(all(self.levels.get(k) and all(float(v) > 0 for v in self.levels[k]) for k in self.kinds), "levels",
-             "a non-empty list of positive numbers per kind")
-        need(isinstance(self.repeats, int) and self.repeats >= 1, "repeats", "an integer >= 1")
-        need(0 < self.top_fraction < 0.5, "top_fraction", "in (0, 0.5)")
-        need(self.connectivity in (6, 18, 26), "connectivity", "6, 18 or 26")
-        need(self.ks and all(isinstance(k, int) and k >= 1 for k in self.ks), "ks", "a list of integers >= 1")
-        need(isinstance(self.n_boot, int) and self.n_boot >= 100, "n_boot", "an integer >= 100")
-        need(self.precision in ("fp32", "bf16"), "precision", "fp32 or bf16")
-        make_scorer(self.scorer)
 
 
 @dataclass(frozen=True)
@@ -345,9 +291,13 @@ def run_bench(bundles: dict, cohort: str | Path, out: str | Path, *, baselines: 
     vmask = np.asarray(cohort.mask, bool)
     vindex = np.full(vmask.shape, -1, np.int64)
     vindex[vmask] = np.arange(int(vmask.sum()))
+    methods = methods_for(cohort, encoders, baselines, s)
+    names = [m.name for m in methods]
+    clash = sorted({n for n in names if names.count(n) > 1})
+    if clash:
+        raise InputError(f"bench: two methods are called {clash[0]!r}; name the encoder differently (NAME=BUNDLE)")
     cases = make_cases(cohort, heldout, vmask, s, progress)
     keep = _example_ids(cases, s.examples)
-    methods = methods_for(cohort, encoders, baselines, s)
     results, maps, timing = {}, {}, {}
     cache: dict[str, tuple] = {}  # the current feature set's (fit, held-out) whole-volume features
     for m in tqdm(methods, desc="methods", unit="method", disable=not progress):

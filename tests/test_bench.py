@@ -119,6 +119,13 @@ def test_report_page_of_a_bench(bench):
     ({"top_fraction": 0.7}, r"top_fraction=0.7 must be in \(0, 0.5\)"),
     ({"connectivity": 4}, r"connectivity=4 must be 6, 18 or 26"),
     ({"scorer": "forest"}, r"unknown scorer 'forest'"),
+    ({"levels": [2.0]}, r"levels=\[2.0\] must be a table"),
+    ({"levels": {"texture": ["a"]}}, r"levels=.* must be a table of non-empty lists of positive numbers"),
+    ({"kinds": "texture"}, r"kinds='texture' must be a list"),
+    ({"kinds": ["texture", "texture"]}, r"a non-empty list of distinct kinds"),
+    ({"examples": -1}, r"examples=-1 must be an integer >= 0"),
+    ({"normalisation": "minmax"}, r"normalisation='minmax' must be one of"),
+    ({"repeats": True}, r"repeats=True must be an integer >= 1"),
 ])
 def test_bad_settings(settings, match):
     with pytest.raises(ConfigError, match=match):
@@ -136,6 +143,8 @@ def test_heldout_rules(tiny_run, tiny_manifest, tmp_path):
         run_bench({}, tiny_manifest, tmp_path, progress=False)
     with pytest.raises(InputError, match=r"need at least 1 held-out control and 3 controls to fit"):
         run_bench({}, tiny_manifest, tmp_path, settings={"heldout": card["train_controls"]}, progress=False)
+    with pytest.raises(InputError, match=r"two methods are called 'texture'; name the encoder differently"):
+        run_bench({"texture": tiny_run["bundle"]}, tiny_manifest, tmp_path, settings=SETTINGS, progress=False)
     assert not (tmp_path / "metrics.json").exists()
 
 

@@ -322,6 +322,8 @@ def test_sweep_end_to_end(swept):
     assert logged[0][:2] == ["baselines", str(os.getpid())]  # baselines first, in this process
     card = read_bundle(out / "runs" / "size-5_seed-1" / "encoder.safetensors")[1]["training"]
     assert sorted(logged[0][3].split(",")) == sorted(card["val_controls"])  # the controls no run trained on
+    other = read_bundle(out / "runs" / "size-5_seed-0" / "encoder.safetensors")[1]["training"]
+    assert other["val_controls"] == card["val_controls"]  # cohort.split_seed, not train.seed, picks them
     assert sorted(c[0] for c in logged[1:]) == ["size-5_seed-0", "size-5_seed-1"]
     for c in logged[1:]:  # runs in worker processes, with max(1, cores // jobs) torch threads each
         assert c[1] != str(os.getpid()) and int(c[2]) == max(1, (os.cpu_count() or 1) // 2)
