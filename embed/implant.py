@@ -22,6 +22,11 @@ raw signal by ``1 + a`` whatever the normalisation. Everything happens on the no
 and only inside a box around the lesion; outside it the scan is untouched, so a bench only
 recomputes features near each lesion.
 
+Limits (measured on a synthetic control whose true tissue maps are known): the mixture sees the
+tissue contrast only, so partial-volume CSF/WM voxels pass for GM and the fitted FLAIR GM-WM gap is
+about 70 % of the true one; texture and geometry changes on FLAIR come out about that much weaker
+than the same lesion made by :mod:`embed.synth`. The tissue contrast must order CSF < GM < WM.
+
 Bench kinds and the synthetic kinds they use: intensity = ``flair`` (FLAIR rise), texture =
 ``blurring`` (grey-white blurring, mean kept), geometry = ``thickening`` (local cortical
 thickening), mixed = ``mixed`` (blurring and rise).
@@ -64,6 +69,10 @@ def tissue_model(data: np.ndarray, mask: np.ndarray, zero, tissue_channel: int =
         raise InputError(f"tissue_model: data {data.shape} and mask {mask.shape} must be (C, X, Y, Z) and (X, Y, Z)")
     if not 0 <= tissue_channel < data.shape[0]:
         raise InputError(f"tissue_model: tissue channel {tissue_channel} is not one of the {data.shape[0]} contrasts")
+    zero = np.asarray(zero, dtype=np.float64).reshape(-1)
+    if zero.shape != (data.shape[0],):
+        raise InputError(f"tissue_model: zero must hold one value per contrast ({data.shape[0]}), got {zero.shape[0]}; "
+                         "compute it with raw_zero")
     values = data[tissue_channel][mask].astype(np.float64)
     if values.size < 30:
         raise InputError(f"tissue_model: the brain mask holds {values.size} voxels; a tissue model needs at least 30")
@@ -79,7 +88,7 @@ def tissue_model(data: np.ndarray, mask: np.ndarray, zero, tissue_channel: int =
         tissue[name] = t
     means = np.stack([np.linalg.lstsq(post, data[c][mask].astype(np.float64), rcond=None)[0]
                       for c in range(data.shape[0])])
-    return TissueModel(tissue=tissue, means=means, zero=np.asarray(zero, dtype=np.float64).reshape(-1))
+    return TissueModel(tissue=tissue, means=means, zero=zero)
 
 
 def raw_zero(stats: dict, contrasts, params: dict | None) -> np.ndarray:

@@ -249,6 +249,8 @@ def test_tissue_model_bad_input():
     tiny[:2, :2, :2] = True
     with pytest.raises(InputError, match="the brain mask holds 8 voxels; a tissue model needs at least 30"):
         tissue_model(data, tiny, [0.0, 0.0])
+    with pytest.raises(InputError, match=r"zero must hold one value per contrast \(2\), got 1"):
+        tissue_model(data, mask, 0.0)
 
 
 def test_plan_lesion_without_room(control):
