@@ -81,7 +81,8 @@ def _flair_set(channel: int, name: str) -> FeatureSet:
 def methods_for(cohort, encoders: dict, baselines: bool, s: BenchSettings) -> list[Method]:
     out = []
     for name, enc in encoders.items():
-        for fs in encoder_sets(name, enc, s.precision):
+        channels = [cohort.contrasts.index(c) for c in enc.channel_names]
+        for fs in encoder_sets(name, enc, s.precision, channels, len(cohort.contrasts)):
             out.append(Method(fs, "ocsvm", fs.name, fs.description + f", {s.scorer} per voxel"))
     if baselines:
         for fs in baseline_sets(len(cohort.contrasts)):
@@ -253,9 +254,10 @@ def _load_encoders(bundles: dict, cohort) -> dict:
     encoders = {}
     for name, path in bundles.items():
         enc = load_encoder(path)
-        if list(enc.channel_names) != list(cohort.contrasts):
-            raise InputError(f"bench: encoder {name!r} ({path}) reads contrasts {list(enc.channel_names)}, the cohort has "
-                             f"{list(cohort.contrasts)}; bench it on a cohort with the same contrasts")
+        missing = [c for c in enc.channel_names if c not in cohort.contrasts]
+        if missing:
+            raise InputError(f"bench: encoder {name!r} ({path}) reads contrast {missing[0]!r}, which the cohort lacks "
+                             f"({', '.join(cohort.contrasts)}); bench it on a cohort with its contrasts")
         diffs = grid_differences(enc.card, cohort.affine, cohort.mask.shape)
         if diffs:
             raise InputError(f"bench: encoder {name!r} ({path}) was trained on another grid: {diffs[0]}")

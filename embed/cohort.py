@@ -11,6 +11,7 @@ disk) and :func:`embed.cache.load_cache`. Normalisation methods live in :mod:`em
 
 from __future__ import annotations
 
+import dataclasses
 import pathlib
 import zlib
 from dataclasses import dataclass
@@ -327,6 +328,28 @@ def load_cohort(manifest, *, normalisation: str = "zscore", min_controls: int = 
         voxel_size=tuple(float(z) for z in first_header.get_zooms()[:3]), stats=stats,
         normalisation=normalisation, manifest=manifest, normalisation_params=params,
     )
+
+
+def select_contrasts(cohort: Cohort, names) -> Cohort:
+    """The cohort restricted to the contrasts ``names`` (in that order); ``()`` keeps every contrast.
+
+    One contrast, or a run of neighbouring ones in order, is a view of ``cohort.data`` (a memory-mapped
+    cache stays on disk); other selections copy it.
+    """
+    names = tuple(names)
+    if not names or names == tuple(cohort.contrasts):
+        return cohort
+    missing = [n for n in names if n not in cohort.contrasts]
+    if missing:
+        raise ConfigError(f"cohort.contrasts: {missing[0]!r} is not a contrast of the cohort "
+                          f"({', '.join(cohort.contrasts)}); pick among those names")
+    idx = [cohort.contrasts.index(n) for n in names]
+    if idx == list(range(idx[0], idx[0] + len(idx))):
+        data = cohort.data[:, idx[0]:idx[0] + len(idx)]
+    else:
+        data = np.ascontiguousarray(cohort.data[:, idx])
+    stats = {s: {c: v for c, v in st.items() if c in names} for s, st in cohort.stats.items()}
+    return dataclasses.replace(cohort, contrasts=names, data=data, stats=stats)
 
 
 def plane_axis(affine: np.ndarray, plane: str) -> int:

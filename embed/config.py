@@ -33,6 +33,7 @@ class CohortConfig:
     normalisation: str = "zscore"
     val_controls: int = 3  # controls held out of training, for validation pairs (and the bench)
     split_seed: int = 0  # which controls are held out; apart from train.seed, so seeds share one split
+    contrasts: tuple[str, ...] = ()  # contrasts to train on, by name; () = every contrast, in manifest order
 
 
 @dataclass(frozen=True)
@@ -99,6 +100,7 @@ _RULES: dict[str, tuple[Any, str]] = {
     "cohort.normalisation": (lambda v: v in NORMALISATIONS, f"one of {NORMALISATIONS}"),
     "cohort.val_controls": (lambda v: v >= 2, "an integer >= 2 (a validation pair needs two controls)"),
     "cohort.split_seed": (lambda v: v >= 0, "an integer >= 0"),
+    "cohort.contrasts": (lambda v: len(set(v)) == len(v) and all(v), "a list of distinct contrast names ([] = all)"),
     "patch.size": (lambda v: v >= 3 and v % 2 == 1, "an odd integer >= 3"),
     "patch.plane": (lambda v: v in PLANES, f"one of {PLANES}"),
     "model.channels": (lambda v: len(v) >= 1 and all(c >= 1 for c in v), "a non-empty list of positive integers"),
@@ -142,6 +144,10 @@ def _coerce(key: str, value: Any, typ: Any, where: str) -> Any:
     elif typ in ("str", str):
         ok = isinstance(value, str)
         want = "a string"
+    elif str(typ).startswith("tuple[str"):
+        ok = isinstance(value, (list, tuple)) and all(isinstance(v, str) for v in value)
+        value = tuple(value) if ok else value
+        want = 'a list of strings, e.g. ["T1w", "FLAIR"]'
     elif str(typ).startswith("tuple[int"):
         ok = isinstance(value, (list, tuple)) and all(isinstance(v, int) and not isinstance(v, bool) for v in value)
         value = tuple(value) if ok else value

@@ -73,10 +73,17 @@ def baseline_sets(n_contrasts: int) -> list[FeatureSet]:
     ]
 
 
-def encoder_sets(name: str, encoder: Encoder, precision: str = "fp32") -> list[FeatureSet]:
-    """An encoder's embedding, and the embedding concatenated with the intensities."""
+def encoder_sets(name: str, encoder: Encoder, precision: str = "fp32", channels: list[int] | None = None,
+                 n_contrasts: int | None = None) -> list[FeatureSet]:
+    """An encoder's embedding, and the embedding concatenated with the intensities of all
+    ``n_contrasts`` contrasts. ``channels``: the volume's channels the encoder reads, in its order
+    (default: all of them), so an encoder of fewer contrasts than the cohort reads its own."""
+    chans = list(range(encoder.in_channels)) if channels is None else list(channels)
+    n_contrasts = encoder.in_channels if n_contrasts is None else n_contrasts
+
     def embed(volume, mask):
-        return encoder.embed_masked(volume, mask, precision=precision, progress=False)
+        v = volume if chans == list(range(volume.shape[0])) else volume[chans]
+        return encoder.embed_masked(v, mask, precision=precision, progress=False)
 
     def concat(volume, mask):
         return np.concatenate([embed(volume, mask), intensity_features(volume, mask)], axis=1)
@@ -85,8 +92,8 @@ def encoder_sets(name: str, encoder: Encoder, precision: str = "fp32") -> list[F
     size = f"{encoder.patch_size}x{encoder.patch_size} {encoder.card.get('patch', {}).get('plane', '')} patches"
     alone = FeatureSet(name, "encoder", f"learned embedding ({encoder.dim} dims, {size})", encoder.dim, reach, embed)
     return [alone, FeatureSet(f"{name}+intensities", "encoder", "learned embedding and the intensities, concatenated",
-                              encoder.dim + encoder.in_channels, reach, concat,
-                              parts=(alone, baseline_sets(encoder.in_channels)[0]))]
+                              encoder.dim + n_contrasts, reach, concat,
+                              parts=(alone, baseline_sets(n_contrasts)[0]))]
 
 
 def block_scales(fs: FeatureSet, fit: np.ndarray) -> np.ndarray:

@@ -19,7 +19,7 @@ import numpy as np
 
 from . import __version__
 from .bundle import card_summary, load_encoder, write_bundle
-from .cohort import AFFINE_ATOL_MM, Subject, load_cohort, load_subject, read_manifest
+from .cohort import AFFINE_ATOL_MM, Subject, load_cohort, load_subject, read_manifest, select_contrasts
 from .config import Config, CohortConfig
 from .dense import Encoder, write_embedding_map
 from .errors import BundleError, InputError
@@ -83,7 +83,8 @@ def train_job(cfg: Config, run_dir: str | Path, *, overwrite: bool = False, prog
     elif rank == 0:  # only rank 0 writes the run dir (other ranks could see it half made)
         check_run_dir(run_dir, overwrite)
     ensure_demo_cohort(manifest, log, progress)
-    cohort = load_any_cohort(manifest, cfg.cohort.normalisation, progress=progress and rank == 0)
+    cohort = select_contrasts(load_any_cohort(manifest, cfg.cohort.normalisation, progress=progress and rank == 0),
+                              cfg.cohort.contrasts)
     check_setup(cfg, cohort)
     if run_dir.exists() and overwrite and not resume and rank == 0:
         shutil.rmtree(run_dir)

@@ -186,3 +186,24 @@ def test_summary_sensitivity_equals_a_count_of_the_ranks(bench):
         ranks = [m["results"][method]["per_lesion"][les["id"]]["rank"] for les in m["lesions"]]
         counted = [np.mean([r is not None and r <= k for r in ranks]) for k in m["ks"]]
         assert sensitivity_curve(m, method, "all") == pytest.approx(counted)
+
+
+def test_an_encoder_of_one_contrast_is_benched_on_its_own_channel(tiny_manifest, tmp_path):
+    """cohort.contrasts = ["FLAIR"] trains a one-contrast encoder; the bench feeds it the cohort's
+    FLAIR channel only, and its concatenation carries every contrast's intensities."""
+    from embed.config import load_config
+    from embed.jobs import train_job
+
+    from .conftest import TINY_OVERRIDES
+
+    cfg = load_config(None, TINY_OVERRIDES + ["train.steps=10", 'cohort.contrasts=["FLAIR"]',
+                                              f'cohort.manifest="{tiny_manifest.as_posix()}"'])
+    run = train_job(cfg, tmp_path / "run", progress=False, log=lambda m: None)
+    card = json.loads((run["run_dir"] / "run.json").read_text())
+    assert card["contrasts"] == ["FLAIR"] and card["architecture"]["in_channels"] == 1
+    settings = {**SETTINGS, "kinds": ["texture"], "repeats": 1, "examples": 0}
+    m = run_bench({"flair": run["bundle"]}, tiny_manifest, tmp_path / "b", baselines=False, settings=settings,
+                  progress=False)
+    assert [x["name"] for x in m["methods"]] == ["flair", "flair+intensities"]
+    per = m["results"]["flair"]["per_lesion"]
+    assert per and all(0 <= v["auroc"] <= 1 and v["signal_ratio"] >= 0 for v in per.values())

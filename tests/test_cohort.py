@@ -531,3 +531,19 @@ def test_normalisation_choices(tmp_path):
                                           r"\(found contrasts \['T1w'\]\); need 11 increasing numbers"):
         marks = c.normalisation_params["landmarks"]
         load_subject(rows[1].images, subject="s01", normalisation=dict(c.normalisation_params, landmarks={"T1w": marks["T1w"]}))
+
+
+def test_select_contrasts(tiny_manifest):
+    from embed.cohort import select_contrasts
+
+    cohort = load_cohort(tiny_manifest, progress=False)
+    assert select_contrasts(cohort, ()) is cohort
+    flair = select_contrasts(cohort, ["FLAIR"])
+    assert flair.contrasts == ("FLAIR",) and flair.data.shape[1] == 1
+    assert np.shares_memory(flair.data, cohort.data)  # one contrast: a view, nothing copied
+    np.testing.assert_array_equal(flair.data[:, 0], cohort.data[:, cohort.contrasts.index("FLAIR")])
+    assert all(set(st) == {"FLAIR"} for st in flair.stats.values())
+    swapped = select_contrasts(cohort, ["FLAIR", "T1w"])
+    np.testing.assert_array_equal(swapped.data[:, 1], cohort.data[:, 0])
+    with pytest.raises(ConfigError, match=r"cohort.contrasts: 'PD' is not a contrast of the cohort \(T1w, FLAIR\)"):
+        select_contrasts(cohort, ["PD"])

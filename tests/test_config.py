@@ -242,6 +242,7 @@ BAD = [
     ("cohort.val_controls", 1, r"an integer >= 2 \(a validation pair needs two controls\)"),
     ("cohort.val_controls", 0, r"an integer >= 2 \(a validation pair needs two controls\)"),
     ("cohort.split_seed", -1, "an integer >= 0"),
+    ("cohort.contrasts", ["T1w", "T1w"], r"a list of distinct contrast names \(\[\] = all\)"),
     ("train.input_noise", -0.1, r"a number >= 0 \(0 = no denoising\)"),
     ("patch.size", 4, "an odd integer >= 3"),
     ("patch.size", 1, "an odd integer >= 3"),
@@ -277,6 +278,7 @@ EDGE = [
     ("cohort.normalisation", "zscore"),
     ("cohort.val_controls", 2),
     ("cohort.split_seed", 0),
+    ("cohort.contrasts", []),
     ("train.input_noise", 0.0),
     ("patch.size", 3),
     ("patch.plane", "sagittal"),
@@ -423,3 +425,9 @@ def test_requires_python_has_tomllib():
     meta = tomllib.loads((REPO / "pyproject.toml").read_text(encoding="utf-8"))
     spec = SpecifierSet(meta["project"]["requires-python"])
     assert "3.10.14" not in spec
+
+
+def test_contrasts_must_be_a_list_of_strings():
+    with pytest.raises(ConfigError, match=r"cohort.contrasts must be a list of strings"):
+        from_dict({"cohort": {"contrasts": "FLAIR"}})
+    assert from_dict({"cohort": {"contrasts": ["FLAIR"]}}).cohort.contrasts == ("FLAIR",)
