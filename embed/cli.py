@@ -108,8 +108,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the whole card as JSON")
 
     p = _add(sub, "embed", "turn images on the template grid into embedding maps, or a cohort into an embedding store",
-             "twinpatch embed runs/demo/encoder.safetensors --image T1w=t1.nii.gz --image FLAIR=flair.nii.gz "
-             "--out emb.nii.gz\n  twinpatch embed runs/demo/encoder.safetensors --manifest demo_data/manifest.csv "
+             "twinpatch embed runs/demo/encoder.safetensors --image T1w=t1.nii.gz "
+             "--out emb.nii.gz   # one --image per contrast the encoder reads (see inspect)\n  twinpatch embed runs/demo/encoder.safetensors --manifest demo_data/manifest.csv "
              "--out store/ --shard 1/4\n  twinpatch embed runs/demo/encoder.safetensors --manifest "
              "demo_data/manifest.csv --maps --out maps/")
     p.add_argument("bundle", metavar="BUNDLE", type=Path)

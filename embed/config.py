@@ -33,7 +33,7 @@ class CohortConfig:
     normalisation: str = "zscore"
     val_controls: int = 3  # controls held out of training, for validation pairs (and the bench)
     split_seed: int = 0  # which controls are held out; apart from train.seed, so seeds share one split
-    contrasts: tuple[str, ...] = ()  # contrasts to train on, by name; () = every contrast, in manifest order
+    contrasts: tuple[str, ...] = ("T1w",)  # contrasts to train on, by name (BIDS suffixes); () = every contrast
 
 
 @dataclass(frozen=True)
@@ -50,7 +50,7 @@ class ModelConfig:
 
 @dataclass(frozen=True)
 class LossConfig:
-    agreement_weight: float = 1.0  # final weight w of (1 - cosine); 0 = plain autoencoder; chosen by sweep
+    agreement_weight: float = 2.0  # final weight w of (1 - cosine); 0 = plain autoencoder; chosen by sweep
     schedule: str = "ramp"  # constant | ramp (linear 0 -> w) | cosine_ramp | step (0, then w)
     ramp_fraction: float = 0.5  # fraction of the steps the ramp takes (step: where w switches on)
     centred: bool = False  # agreement on batch-centred embeddings

@@ -17,7 +17,7 @@ def tiny_manifest(tmp_path_factory):
 
 
 TINY_OVERRIDES = ["train.steps=30", "train.batch_size=32", "train.val_every=10", "train.val_pairs=64",
-                  "model.channels=[8, 16]", "model.dim=8", "patch.size=5", "cohort.val_controls=2"]
+                  "model.channels=[8, 16]", "model.dim=8", "patch.size=5", "cohort.val_controls=2", "cohort.contrasts=[]"]
 
 
 @pytest.fixture(scope="session")
