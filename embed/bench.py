@@ -302,10 +302,13 @@ def run_bench(bundles: dict, cohort: str | Path, out: str | Path, *, baselines: 
     keep = _example_ids(cases, s.examples)
     results, maps, timing = {}, {}, {}
     cache: dict[str, tuple] = {}  # the current feature set's (fit, held-out) whole-volume features
+    lesion_features: dict[str, list] = {}  # feature set -> per-case region features (small; reused by name)
     for m in tqdm(methods, desc="methods", unit="method", disable=not progress):
         t1 = time.perf_counter()
         fit, held = _whole_features(m.features, cohort, fit_idx, heldout, vmask, cache)
-        queries = _queries(m, cohort, heldout, cases, vmask, vindex)
+        if m.features.name not in lesion_features:  # e.g. "intensities" serves two methods
+            lesion_features[m.features.name] = _queries(m, cohort, heldout, cases, vmask, vindex)
+        queries = lesion_features[m.features.name]
         if m.features.parts:  # a concatenation: blocks weighed equally
             scale = block_scales(m.features, fit)
             fit, held, queries = fit * scale, held * scale, [(i, f * scale) for i, f in queries]
@@ -317,6 +320,7 @@ def run_bench(bundles: dict, cohort: str | Path, out: str | Path, *, baselines: 
                                                  cohort.affine, s, keep)
         timing[m.name] = round(time.perf_counter() - t1, 1)
     cache.clear()
+    lesion_features.clear()
     metrics = {
         "kind": "twinpatch bench", "twinpatch_version": __version__, "small_n": SMALL_N,
         "settings": {**{k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(s).items()},

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-import tomllib
 from pathlib import Path
 
+from .config import parse_value
 from .errors import ConfigError, InputError
 
 
@@ -51,10 +51,7 @@ def parse_settings(items: list[str]) -> dict:
         key, sep, value = item.partition("=")
         if not sep or not key.strip():
             raise ConfigError(f"--set {item!r}: expected KEY=VALUE, e.g. --set repeats=1")
-        try:
-            out[key.strip()] = tomllib.loads(f"v = {value}")["v"]
-        except tomllib.TOMLDecodeError:
-            out[key.strip()] = value
+        out[key.strip()] = parse_value(value)
     return out
 
 

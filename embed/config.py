@@ -199,6 +199,25 @@ def to_dict(cfg: Config) -> dict[str, dict[str, Any]]:
     return out
 
 
+def parse_value(raw: str) -> Any:
+    """A ``--set`` value: TOML (numbers, booleans, lists, quoted strings); anything else stays a string."""
+    try:
+        return tomllib.loads(f"v = {raw.strip()}")["v"]
+    except tomllib.TOMLDecodeError:
+        return raw.strip()
+
+
+def read_toml(path: str | Path, what: str, example: str) -> dict[str, Any]:
+    """The TOML file ``path`` as a dict; ConfigError naming ``what`` and a file to start from."""
+    path = Path(path)
+    if not path.is_file():
+        raise ConfigError(f"{what} {path} not found; pass an existing TOML file, e.g. {example}")
+    try:
+        return tomllib.loads(path.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc}); fix the file or start from {example}") from None
+
+
 def parse_override(text: str) -> tuple[str, Any]:
     """``"train.steps=200"`` -> ``("train.steps", 200)``; a value that is not TOML stays a string."""
     if "=" not in text:
@@ -207,11 +226,7 @@ def parse_override(text: str) -> tuple[str, Any]:
     key = key.strip()
     if key.count(".") != 1 or not all(key.split(".")):
         raise ConfigError(f"--set {text!r}: key must be section.key, e.g. train.steps; got {key!r}")
-    try:
-        value = tomllib.loads(f"v = {raw.strip()}")["v"]
-    except tomllib.TOMLDecodeError:
-        value = raw.strip()
-    return key, value
+    return key, parse_value(raw)
 
 
 def load_config(path: str | Path | None = None, overrides: list[str] = ()) -> Config:
@@ -219,14 +234,8 @@ def load_config(path: str | Path | None = None, overrides: list[str] = ()) -> Co
     data: dict[str, Any] = {}
     where = "defaults"
     if path is not None:
-        path = Path(path)
         where = str(path)
-        if not path.is_file():
-            raise ConfigError(f"config file {path} not found; pass an existing TOML file, e.g. configs/demo.toml")
-        try:
-            data = tomllib.loads(path.read_text(encoding="utf-8"))
-        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-            raise ConfigError(f"{path}: not valid TOML ({exc}); fix the file or start from configs/demo.toml") from None
+        data = read_toml(path, "config file", "configs/demo.toml")
     for text in overrides:
         key, value = parse_override(text)
         section, name = key.split(".")

@@ -17,19 +17,21 @@ from .errors import InputError
 from .files import atomic
 
 
-def _pyplot():
+def pyplot():
+    """matplotlib's pyplot on the file-only Agg backend (no display needed)."""
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     return plt
 
 
-def _save(fig, path) -> Path:
+def save_figure(fig, path, dpi: int = 110) -> Path:
+    """Write ``fig`` as PNG under a temporary name, rename it to ``path``, close the figure."""
     path = Path(path)
     try:
         with atomic(path) as tmp:
-            fig.savefig(tmp, dpi=110)
+            fig.savefig(tmp, dpi=dpi)
     finally:
-        _pyplot().close(fig)
+        pyplot().close(fig)
     return path
 
 
@@ -69,7 +71,7 @@ def _yerr(rows: list, keys: list[str], ys: list[float]) -> np.ndarray | None:
 
 
 def _panels(n: int, width: float):
-    fig, axes = _pyplot().subplots(1, n, figsize=(width * n + 1.6, 3.9), sharey=True, squeeze=False,
+    fig, axes = pyplot().subplots(1, n, figsize=(width * n + 1.6, 3.9), sharey=True, squeeze=False,
                                    layout="constrained")
     return fig, axes[0]
 
@@ -79,7 +81,7 @@ def _finish(fig, axes, ylabel: str, title: str, path) -> Path:
     handles, labels = axes[0].get_legend_handles_labels()
     fig.legend(handles, labels, loc="outside lower center", ncol=min(len(labels), 4) or 1, fontsize=8)
     fig.suptitle(title, fontsize=11)
-    return _save(fig, path)
+    return save_figure(fig, path)
 
 
 def sensitivity_curve(metrics: dict, method: str, kind: str) -> list[float]:
@@ -198,7 +200,7 @@ def example_figure(path, background, score, lesion, labels, centre, title) -> Pa
     brain = np.concatenate([v[3][v[3] != 0] for v in views])
     lo, hi = np.percentile(brain, [1, 99]) if brain.size else (0.0, 1.0)
     grey = matplotlib.colormaps["gray"].with_extremes(bad=(1, 1, 1, 0))
-    fig, axes = _pyplot().subplots(1, 3, figsize=(11, 4.3), layout="constrained")
+    fig, axes = pyplot().subplots(1, 3, figsize=(11, 4.3), layout="constrained")
     for ax, (axis, d0, d1, bg, sc, les, lab) in zip(axes, views):
         extent = (box[d0][0] - 0.5, box[d0][1] - 0.5, box[d1][0] - 0.5, box[d1][1] - 0.5)
         ax.imshow(np.ma.masked_equal(bg, 0).T, cmap=grey, origin="lower", vmin=lo, vmax=hi, extent=extent,
@@ -222,6 +224,6 @@ def example_figure(path, background, score, lesion, labels, centre, title) -> Pa
                Line2D([], [], color=_CLUSTER_COLOUR, lw=1.2, ls="--", label="top clusters (number = rank)")]
     fig.legend(handles=handles, loc="outside lower center", ncol=2, fontsize=8, frameon=False)
     fig.suptitle(str(title), fontsize=10)
-    return _save(fig, path)
+    return save_figure(fig, path)
 
 

@@ -21,7 +21,8 @@ import matplotlib
 import numpy as np
 
 from .errors import InputError
-from .files import atomic, write_text
+from .figures import pyplot, save_figure
+from .files import write_text
 
 CAUTION = ("Research software, not a diagnostic device: findings need expert review "
            "under local clinical practice.")
@@ -49,8 +50,7 @@ def cluster_figure(path: str | Path, background: np.ndarray, score: np.ndarray, 
     ``background, score: (X, Y, Z) float``; ``labels: (X, Y, Z) int`` (cluster ``rank`` is label
     ``rank``). Written under a temporary name, then renamed.
     """
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    plt = pyplot()
 
     path = Path(path)
     rank = int(row["rank"])
@@ -76,12 +76,7 @@ def cluster_figure(path: str | Path, background: np.ndarray, score: np.ndarray, 
            f"{float(row['peak_z_mm']):.0f}) mm"
     fig.suptitle(f"{subject} cluster {rank}: {size}, mean {float(row['mean_score']):.2f}, {peak}", fontsize=10)
     fig.supxlabel(CAUTION, fontsize=8, color="#444444")
-    try:
-        with atomic(path) as tmp:
-            fig.savefig(tmp, dpi=110)
-    finally:
-        plt.close(fig)
-    return path
+    return save_figure(fig, path)
 
 
 # ----- the static HTML page ------------------------------------------------------------------

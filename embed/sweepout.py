@@ -16,7 +16,7 @@ import numpy as np
 
 from . import __version__
 from .errors import InputError
-from .files import atomic, write_json, write_text
+from .files import write_json, write_text
 from .sweepplan import BUNDLE, RunSpec, Sweep, _read_json, fmt_value, load_sweep, plan, short_names
 
 
@@ -74,10 +74,9 @@ def _ranking(runs: list[dict], short: dict) -> list[dict]:
 def _figure(file: Path, key: str, values: tuple, runs: list[dict], baselines: list[dict], metric: str,
             kinds: tuple, caution: str) -> None:
     """Metric against one swept key: points per run (all seeds and other keys), mean line per method."""
-    import matplotlib
+    from .figures import pyplot, save_figure
 
-    matplotlib.use("Agg")
-    from matplotlib import pyplot as plt
+    plt = pyplot()
 
     methods = list(dict.fromkeys(m for r in runs for m in r["values"]))
     labels = [fmt_value(v) for v in values]
@@ -98,11 +97,7 @@ def _figure(file: Path, key: str, values: tuple, runs: list[dict], baselines: li
     ax.legend(fontsize=7)
     ax.set_title("dots: single runs (every seed and other setting); line: their mean", fontsize=8)
     fig.supxlabel(caution, fontsize=7, color="#444444")
-    try:
-        with atomic(file) as tmp:
-            fig.savefig(tmp, dpi=100)
-    finally:
-        plt.close(fig)
+    save_figure(fig, file, dpi=100)
 
 
 def _csv(summary: dict) -> str:

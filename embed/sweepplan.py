@@ -9,12 +9,11 @@ from __future__ import annotations
 import itertools
 import json
 import re
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from .config import Config, from_dict, load_config, to_dict
+from .config import Config, from_dict, load_config, read_toml, to_dict
 from .errors import ConfigError, InputError
 
 METRICS = ("auroc", "auprc", "dice", "sens@1", "sens@3", "sens@5", "sens@10", "signal_ratio")  # all: higher is better
@@ -124,12 +123,7 @@ def _check_head(path: Path, head: dict) -> tuple:
 def load_sweep(path: str | Path) -> Sweep:
     """Read and validate a sweep file; every run's configuration is built (and checked) here."""
     path = Path(path)
-    if not path.is_file():
-        raise ConfigError(f"sweep file {path} not found; pass an existing TOML file, e.g. {EXAMPLE}")
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise ConfigError(f"{path}: not valid TOML ({exc}); fix the file or start from {EXAMPLE}") from None
+    data = read_toml(path, "sweep file", EXAMPLE)
     for name, value in data.items():
         if name not in SECTIONS:
             raise ConfigError(f"{path}: unknown section [{name}]; valid sections are "
