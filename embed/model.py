@@ -158,14 +158,16 @@ def overlap_add(cols: torch.Tensor, k: int, out: torch.Tensor | None = None) -> 
 
 
 class _Windows(torch.autograd.Function):
+    """:func:`windows` of ``h`` cast to ``dtype`` (the gather runs in ``h``'s own dtype)."""
+
     @staticmethod
-    def forward(ctx, h, k):
-        ctx.k = k
-        return windows(h, k)
+    def forward(ctx, h, k, dtype):
+        ctx.k, ctx.in_dtype = k, h.dtype
+        return windows(h, k).to(dtype)
 
     @staticmethod
     def backward(ctx, grad):
-        return overlap_add(grad.contiguous(), ctx.k), None
+        return overlap_add(grad.contiguous(), ctx.k).to(ctx.in_dtype), None, None
 
 
 class _OverlapAddBias(torch.autograd.Function):
@@ -194,9 +196,11 @@ def forward_matmul(model: TwinAutoencoder, x: torch.Tensor, dtype: torch.dtype =
     """
     n = x.shape[0]
     convs = [m for m in model.encoder.layers if isinstance(m, nn.Conv2d)]
-    h = x.permute(0, 2, 3, 1).to(dtype)  # (N, p, p, C)
+    # The input is windowed in float32 and then cast: PyTorch's bfloat16 gather is several times
+    # slower than its float32 one for 1 or 2 channels (measured: benchmarks/train_speed.py notes).
+    h = x.permute(0, 2, 3, 1)  # (N, p, p, C) float32
     for conv in convs[:-1]:
-        cols = _Windows.apply(h, conv.kernel_size[0])  # (N, o, o, 3, 3, c)
+        cols = _Windows.apply(h, conv.kernel_size[0], dtype)  # (N, o, o, 3, 3, c)
         o = cols.shape[1]
         w = conv.weight.permute(2, 3, 1, 0).reshape(-1, conv.out_channels).to(dtype)  # rows (ky, kx, c)
         h = torch.addmm(conv.bias.to(dtype), cols.view(n * o * o, -1), w)
