@@ -2,9 +2,9 @@
 
 Layout: the encoder's tensors under their ``state_dict`` names, and one metadata entry
 ``twinpatch.card`` with the card as JSON. The card holds the format name and version, the patch
-(size, plane, voxel axis, zero padding), the contrasts and their normalisation, the grid, the
-embedding size, the architecture, the resolved training configuration, a training summary, the
-package version and ``weights_sha256``: the SHA-256 of every tensor's name, dtype, shape and
+(size, 2 or 3 dimensions, plane and voxel axis of a 2D patch, zero padding), the contrasts and
+their normalisation, the grid, the embedding size, the architecture, the resolved training
+configuration, a training summary, the package version and ``weights_sha256``: the SHA-256 of every tensor's name, dtype, shape and
 bytes in name order. Loading recomputes it and refuses a bundle that does not match.
 
 safetensors holds only raw tensors and strings, so reading a bundle runs no code from the file.
@@ -90,7 +90,8 @@ def load_encoder(path: str | Path) -> Encoder:
     tensors, card = read_bundle(path)
     arch = card.get("architecture", {})
     try:
-        module = PatchEncoder(int(arch["in_channels"]), int(arch["patch_size"]), tuple(arch["channels"]), int(arch["dim"]))
+        module = PatchEncoder(int(arch["in_channels"]), int(arch["patch_size"]), tuple(arch["channels"]), int(arch["dim"]),
+                              int(arch.get("dims", 2)))
         module.load_state_dict(tensors, strict=True)
     except (KeyError, TypeError, RuntimeError, ValueError) as exc:
         raise BundleError(f"{path}: card architecture and tensors disagree ({type(exc).__name__}: "
@@ -115,6 +116,14 @@ def verify(path: str | Path) -> tuple[dict, bool]:
     return card, weights_sha256(tensors) == card.get("weights_sha256")
 
 
+def patch_words(patch: dict) -> str:
+    """``7 x 7 voxels, axial plane (voxel axis 2 fixed)`` or ``7 x 7 x 7 voxels (3D)`` from a card's patch."""
+    if patch.get("dims", 2) == 3:
+        return f"{' x '.join([str(patch.get('size'))] * 3)} voxels (3D)"
+    return (f"{patch.get('size')} x {patch.get('size')} voxels, {patch.get('plane')} plane "
+            f"(voxel axis {patch.get('axis')} fixed)")
+
+
 def describe(card: dict, checksum_ok: bool) -> str:
     """The card in human form, for ``twinpatch inspect``."""
     arch, patch, grid = card.get("architecture", {}), card.get("patch", {}), card.get("grid", {})
@@ -127,8 +136,7 @@ def describe(card: dict, checksum_ok: bool) -> str:
         f"(sha256 {str(card.get('weights_sha256'))[:16]}...)",
         f"contrasts       {', '.join(card.get('contrasts', []))} (channel order)",
         f"normalisation   {norm.get('method')} inside the brain mask",
-        f"patch           {patch.get('size')} x {patch.get('size')} voxels, {patch.get('plane')} plane "
-        f"(voxel axis {patch.get('axis')} fixed), {patch.get('padding')} outside the grid",
+        f"patch           {patch_words(patch)}, {patch.get('padding')} outside the grid",
         f"grid            {' x '.join(map(str, grid.get('shape', [])))} voxels of "
         f"{' x '.join(f'{v:g}' for v in grid.get('voxel_size_mm', []))} mm, orientation {grid.get('orientation')}",
         f"embedding       {arch.get('dim')} dimensions; encoder widths {arch.get('channels')}, "
@@ -150,7 +158,7 @@ def export_onnx(encoder: Encoder, path: str | Path, opset: int = 17) -> Path:
     """Write the encoder as ONNX (input ``x: (N, C, H, W)``, output ``z: (N, D, H-p+1, W-p+1)``).
 
     N, H and W are dynamic: the same file embeds patches (H = W = p gives ``(N, D, 1, 1)``) or
-    whole zero-padded slices. The card goes into the model's metadata (key ``twinpatch.card``).
+    whole zero-padded slices. A 3D encoder takes ``(N, C, H, W, L)`` (all sides dynamic). The card goes into the model's metadata (key ``twinpatch.card``).
     Needs the ``onnx`` package (``pip install onnx``).
     """
     try:
@@ -159,12 +167,15 @@ def export_onnx(encoder: Encoder, path: str | Path, opset: int = 17) -> Path:
         raise BundleError("--onnx needs the onnx package: pip install onnx") from None
     path = Path(path)
     p = encoder.patch_size
-    example = torch.zeros(1, encoder.in_channels, p + 4, p + 6)
+    sides = (p + 4, p + 6) if encoder.module.dims == 2 else (p + 2, p + 4, p + 6)
+    example = torch.zeros(1, encoder.in_channels, *sides)
+    names = "hwl"[:len(sides)]
     with atomic(path) as tmp:
         with warnings.catch_warnings():  # the TorchScript-based exporter is deprecated but needs no onnxscript
             warnings.simplefilter("ignore", DeprecationWarning)
             torch.onnx.export(encoder.module, (example,), str(tmp), input_names=["x"], output_names=["z"],
-                              dynamic_axes={"x": {0: "n", 2: "h", 3: "w"}, "z": {0: "n", 2: "h_out", 3: "w_out"}},
+                              dynamic_axes={"x": {0: "n", **{i + 2: a for i, a in enumerate(names)}},
+                                            "z": {0: "n", **{i + 2: f"{a}_out" for i, a in enumerate(names)}}},
                               opset_version=opset, dynamo=False)
         model = onnx.load(str(tmp))
         entry = model.metadata_props.add()

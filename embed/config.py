@@ -39,7 +39,8 @@ class CohortConfig:
 @dataclass(frozen=True)
 class PatchConfig:
     size: int = 7  # voxels per side (odd); about 15 mm of tissue is common practice, no source
-    plane: str = "axial"
+    plane: str = "axial"  # plane of a 2D patch (unused by 3D patches)
+    dims: int = 2  # 2 = square patches in `plane`; 3 = cubes (3D convolutions, slower to train)
 
 
 @dataclass(frozen=True)
@@ -103,6 +104,7 @@ _RULES: dict[str, tuple[Any, str]] = {
     "cohort.contrasts": (lambda v: len(set(v)) == len(v) and all(v), "a list of distinct contrast names ([] = all)"),
     "patch.size": (lambda v: v >= 3 and v % 2 == 1, "an odd integer >= 3"),
     "patch.plane": (lambda v: v in PLANES, f"one of {PLANES}"),
+    "patch.dims": (lambda v: v in (2, 3), "2 (square patches in patch.plane) or 3 (cubes)"),
     "model.channels": (lambda v: len(v) >= 1 and all(c >= 1 for c in v), "a non-empty list of positive integers"),
     "model.dim": (lambda v: v >= 2, "an integer >= 2"),
     "loss.agreement_weight": (lambda v: v >= 0, "a number >= 0"),

@@ -10,7 +10,8 @@ Sets:
 - ``intensities``: the normalised intensities themselves (D = C, reach 0): no encoder at all.
 - ``texture``: hand-made local texture per contrast: intensity, standard deviation in the 3x3x3
   window, gradient magnitude (central differences, ``np.gradient``); D = 3C, reach 1.
-- an encoder: its embedding (D = encoder.dim, reach = half the patch in the patch plane).
+- an encoder: its embedding (D = encoder.dim, reach = half the patch in the patch plane, or along
+  every axis for 3D patches).
 - an encoder + intensities: both concatenated (D = encoder.dim + C), each block scaled by
   :func:`block_scales` so that both weigh the same in a distance (the embedding has many more
   dimensions, on another scale; standardising blocks before concatenating is common practice, no
@@ -59,7 +60,7 @@ def texture_features(volume: np.ndarray, mask: np.ndarray) -> np.ndarray:
 
 
 def encoder_reach(encoder: Encoder) -> tuple[int, int, int]:
-    """Half the patch along the two in-plane axes, 0 across the plane."""
+    """Half the patch along the two in-plane axes, 0 across the plane (3D patches: every axis)."""
     return tuple(0 if a == encoder.axis else encoder.patch_size // 2 for a in range(3))
 
 
@@ -89,7 +90,9 @@ def encoder_sets(name: str, encoder: Encoder, precision: str = "fp32", channels:
         return np.concatenate([embed(volume, mask), intensity_features(volume, mask)], axis=1)
 
     reach = encoder_reach(encoder)
-    size = f"{encoder.patch_size}x{encoder.patch_size} {encoder.card.get('patch', {}).get('plane', '')} patches"
+    p = encoder.patch_size
+    size = (f"{p}x{p}x{p} patches" if encoder.dims == 3
+            else f"{p}x{p} {encoder.card.get('patch', {}).get('plane', '')} patches")
     alone = FeatureSet(name, "encoder", f"learned embedding ({encoder.dim} dims, {size})", encoder.dim, reach, embed)
     return [alone, FeatureSet(f"{name}+intensities", "encoder", "learned embedding and the intensities, concatenated",
                               encoder.dim + n_contrasts, reach, concat,

@@ -25,27 +25,25 @@ from __future__ import annotations
 
 import json
 import math
-import os
 import signal
 import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
-import nibabel as nib
 import numpy as np
 import torch
 
 from .files import atomic, write_text
-from . import __version__
-from .cohort import Cohort, plane_axis
+from .cohort import Cohort
 from .config import Config, dumps, to_dict
-from .errors import BundleError, ConfigError
-from .model import TwinAutoencoder, build, final_kernel, forward_matmul
+from .model import TwinAutoencoder, build, forward_matmul
 from .monitor import Monitor, collapse_warning, recon_grid, truncate_metrics
 from .objective import (agreement, agreement_space, agreement_weight, cosine_diagnostics, mmd_to_prior,
                         pair_loss, prior_draw, retrieval_score)
-from .pairs import Pairs, RetrievalSet, check_patch_fits, sample_pairs, sample_retrieval, split_controls
+from .pairs import Pairs, RetrievalSet, sample_pairs, sample_retrieval, split_controls
+from .parallel import average_gradients, world_info
+from .runsetup import check_init_bundle, check_setup, run_card
 
 LOG_EVERY = 10  # steps between training-metric lines
 CHECKPOINT = Path("checkpoints") / "last.pt"
@@ -79,11 +77,16 @@ def load_checkpoint(path: Path) -> dict:
 def forward_pair(model: TwinAutoencoder, a: torch.Tensor, b: torch.Tensor, precision: str):
     """One pass over both halves as one batch. Returns ``z1, z2, r1, r2`` in float32.
 
-    ``bf16``: :func:`embed.model.forward_matmul` in bfloat16; ``fp32``: the modules.
+    ``bf16``: :func:`embed.model.forward_matmul` in bfloat16 (3D patches: the modules under
+    bfloat16 autocast); ``fp32``: the modules.
     """
     x = torch.cat([a, b])
-    if precision == "bf16":
+    if precision == "bf16" and model.dims == 2:
         z, r = forward_matmul(model, x, torch.bfloat16)
+    elif precision == "bf16":  # 3D patches: the modules' own bfloat16 convolutions
+        with torch.autocast("cpu", dtype=torch.bfloat16):
+            z, r = model(x)
+        z, r = z.float(), r.float()
     else:
         z, r = model(x)
     n = len(a)
@@ -126,76 +129,6 @@ def validate(model: TwinAutoencoder, val: Pairs, retrieval: RetrievalSet, weight
     return metrics, grid, z1.numpy()
 
 
-def check_setup(cfg: Config, cohort: Cohort) -> int:
-    """Refuse a configuration that cannot train on this cohort, before anything is written.
-
-    Returns the voxel axis held fixed by the patch plane.
-    """
-    axis = plane_axis(cohort.affine, cfg.patch.plane)
-    check_patch_fits(cohort.mask.shape, cfg.patch.size, axis)
-    final_kernel(cfg.patch.size, cfg.model.channels)
-    split_controls(cohort.indices("control"), cfg.cohort.val_controls, np.random.default_rng(0))
-    if cfg.loss.reconstruction_weight == 0 and cfg.loss.agreement_weight == 0:
-        raise ConfigError("loss.reconstruction_weight and loss.agreement_weight are both 0: nothing to train; "
-                          "set one of them above 0")
-    rank, world = world_info()
-    if cfg.train.batch_size % world:
-        raise ConfigError(f"train.batch_size={cfg.train.batch_size} does not split over {world} processes; "
-                          f"use a multiple of {world}")
-    if cfg.train.init:
-        check_init_bundle(cfg, cohort, axis)
-    return axis
-
-
-def check_init_bundle(cfg: Config, cohort: Cohort, axis: int) -> dict:
-    """Read the ``--init`` bundle and check it fits this run. Returns its encoder tensors."""
-    from .bundle import read_bundle
-
-    path = cfg.train.init
-    tensors, card = read_bundle(path)
-    arch, patch = card.get("architecture", {}), card.get("patch", {})
-    checks = [
-        ("contrasts", card.get("contrasts"), list(cohort.contrasts), "train on a cohort with the same contrasts, in the same order"),
-        ("patch size", patch.get("size"), cfg.patch.size, f"set patch.size={patch.get('size')}"),
-        ("patch voxel axis", patch.get("axis"), axis, f"set patch.plane={patch.get('plane')!r}"),
-        ("model.channels", arch.get("channels"), list(cfg.model.channels), f"set model.channels={arch.get('channels')}"),
-        ("model.dim", arch.get("dim"), cfg.model.dim, f"set model.dim={arch.get('dim')}"),
-    ]
-    for what, found, want, fix in checks:
-        if found != want:
-            raise BundleError(f"--init {path}: the bundle's {what} is {found!r}, this run's is {want!r}; {fix}")
-    return tensors
-
-
-def world_info() -> tuple[int, int]:
-    """``(rank, world_size)``; joins the gloo process group when launched by torchrun with > 1 process."""
-    import torch.distributed as dist
-
-    world = int(os.environ.get("WORLD_SIZE", "1"))
-    if world > 1 and not dist.is_initialized():
-        dist.init_process_group("gloo")
-    return (dist.get_rank(), dist.get_world_size()) if world > 1 else (0, 1)
-
-
-def average_gradients(params: list[torch.Tensor], world: int, stop: bool = False) -> bool:
-    """All-reduce the gradients of ``params`` (one flat buffer) and divide by ``world``.
-
-    ``stop`` (this process got Ctrl-C / SIGTERM) rides along; returns True when any process got
-    one, so that every process stops after the same step.
-    """
-    import torch.distributed as dist
-
-    flat = torch.cat([p.grad.reshape(-1) for p in params] + [torch.tensor([float(stop)])])
-    dist.all_reduce(flat)
-    any_stop = bool(flat[-1] > 0)
-    flat /= world
-    i = 0
-    for p in params:
-        p.grad.copy_(flat[i:i + p.numel()].view_as(p.grad))
-        i += p.numel()
-    return any_stop
-
-
 class _StopRequest:
     """Turn SIGINT / SIGTERM into a flag the loop checks after each step (a second Ctrl-C stops at once)."""
 
@@ -233,7 +166,7 @@ def train(cfg: Config, cohort: Cohort, run_dir: str | Path, progress: bool = Tru
         torch.use_deterministic_algorithms(deterministic)
 
 
-def _train(cfg: Config, cohort: Cohort, run_dir: Path, axis: int, progress: bool, resume: bool) -> TrainResult:
+def _train(cfg: Config, cohort: Cohort, run_dir: Path, axis: int | None, progress: bool, resume: bool) -> TrainResult:
     rank, world = world_info()
     main = rank == 0
     p, tc, lc = cfg.patch.size, cfg.train, cfg.loss
@@ -243,7 +176,7 @@ def _train(cfg: Config, cohort: Cohort, run_dir: Path, axis: int, progress: bool
     val = sample_pairs(cohort.data, val_idx, voxels, tc.val_pairs, p, axis, np.random.default_rng([tc.seed, 1]))
     retrieval = sample_retrieval(cohort.data, int(val_idx[0]), int(val_idx[1]), voxels, tc.retrieval_voxels, p,
                                  axis, np.random.default_rng([tc.seed, 3]))
-    model = build(len(cohort.contrasts), p, cfg.model.channels, cfg.model.dim, tc.seed)
+    model = build(len(cohort.contrasts), p, cfg.model.channels, cfg.model.dim, tc.seed, cfg.patch.dims)
     opt = torch.optim.Adam(model.parameters(), lr=tc.lr)
     params = list(model.parameters())
     ckpt_path = run_dir / CHECKPOINT
@@ -385,35 +318,3 @@ def noisy(a: torch.Tensor, b: torch.Tensor, sd: float, seed: list) -> tuple[torc
         return a, b
     rng = np.random.default_rng(seed)
     return tuple(x + torch.from_numpy(rng.standard_normal(x.shape, dtype=np.float32) * np.float32(sd)) for x in (a, b))
-
-
-def run_card(cfg: Config, cohort: Cohort, axis: int, train_idx, val_idx, result: TrainResult, state: dict) -> dict:
-    """What export needs besides the weights, as plain JSON."""
-    # The parameters load_subject needs to normalise a new case exactly as the controls were
-    # (histogram landmarks included): see embed.normalise.
-    normalisation = dict(cohort.normalisation_params or {"method": cohort.normalisation, "within": "mask"})
-    return {
-        "twinpatch_version": __version__,
-        "contrasts": list(cohort.contrasts),
-        "normalisation": normalisation,
-        "patch": {"size": cfg.patch.size, "plane": cfg.patch.plane, "axis": axis, "padding": "zeros"},
-        "grid": {
-            "shape": list(cohort.mask.shape),
-            "affine": np.asarray(cohort.affine, dtype=float).tolist(),
-            "orientation": "".join(nib.aff2axcodes(cohort.affine)),
-            "voxel_size_mm": [float(v) for v in cohort.voxel_size],
-        },
-        "architecture": {"kind": "valid-conv-encoder", "in_channels": len(cohort.contrasts), "patch_size": cfg.patch.size,
-                         "channels": list(cfg.model.channels), "dim": cfg.model.dim,
-                         "activation": "leaky_relu(0.1)"},
-        "training": {
-            "train_controls": [cohort.subjects[i] for i in train_idx],
-            "val_controls": [cohort.subjects[i] for i in val_idx],
-            "steps": result.steps, "steps_planned": cfg.train.steps, "finished": result.steps >= cfg.train.steps
-            or result.stopped_early, "seconds": round(result.seconds, 2),
-            "pairs_per_second": round(result.pairs_per_second, 1),
-            "final_validation": result.final,
-            "init": cfg.train.init or None,
-        },
-        "config": to_dict(cfg),
-    }

@@ -23,7 +23,8 @@ from .cohort import AFFINE_ATOL_MM, Subject, load_cohort, load_subject, read_man
 from .config import Config, CohortConfig
 from .dense import Encoder, write_embedding_map
 from .errors import BundleError, InputError
-from .fit import check_setup, load_checkpoint, train
+from .fit import load_checkpoint, train
+from .runsetup import check_setup
 
 DEMO_MANIFEST = CohortConfig().manifest  # the built-in demo cohort's manifest path
 
@@ -72,7 +73,7 @@ def train_job(cfg: Config, run_dir: str | Path, *, overwrite: bool = False, prog
     run's own ``config.toml``). Under torchrun only rank 0 exports and embeds. Returns a dict of
     output paths and summary numbers (``bundle`` and ``map`` are None on other ranks).
     """
-    from .fit import world_info
+    from .parallel import world_info
 
     t0 = time.perf_counter()
     run_dir = Path(run_dir)

@@ -5,7 +5,8 @@ then one ``k x k`` convolution with ``k = patch - 2 * len(channels)`` that maps 
 extent to the D-dimensional embedding, with no activation. Every layer is a stride-1 valid
 convolution, so the same module run on a whole zero-padded slice gives, at every voxel, exactly
 the embedding of that voxel's patch (see :mod:`embed.dense`). There is no normalisation layer
-that pools over space or batch, which would break that equality.
+that pools over space or batch, which would break that equality. ``dims=3`` builds the same
+network for cubic patches with 3D convolutions (``patch.dims = 3``).
 
 Decoder: a linear layer from the embedding back to the ``k x k`` feature map (a linear layer
 here is cheap; a transposed convolution expanding a 1x1 code is slow on CPU), then transposed
@@ -46,71 +47,85 @@ def final_kernel(patch_size: int, channels: tuple[int, ...]) -> int:
     return k
 
 
+def _layers(dims: int) -> tuple[type, type]:
+    """``(Conv, ConvTranspose)`` module classes for 2D or 3D patches."""
+    if dims not in (2, 3):
+        raise ConfigError(f"patch.dims={dims}: use 2 (square patches) or 3 (cubes)")
+    return (nn.Conv2d, nn.ConvTranspose2d) if dims == 2 else (nn.Conv3d, nn.ConvTranspose3d)
+
+
 class PatchEncoder(nn.Module):
     """Valid-convolution encoder.
 
     ``forward(x: (N, C, H, W)) -> (N, D, H - p + 1, W - p + 1)``; on patches ``(N, C, p, p)``
-    the output is ``(N, D, 1, 1)``.
+    the output is ``(N, D, 1, 1)``. With ``dims=3`` every convolution is 3D and every shape has
+    one more spatial side (cubes ``(N, C, p, p, p)``).
     """
 
-    def __init__(self, in_channels: int, patch_size: int, channels: tuple[int, ...], dim: int):
+    def __init__(self, in_channels: int, patch_size: int, channels: tuple[int, ...], dim: int, dims: int = 2):
         super().__init__()
         k = final_kernel(patch_size, channels)
+        conv, _ = _layers(dims)
         layers: list[nn.Module] = []
         prev = in_channels
         for width in channels:
-            layers += [nn.Conv2d(prev, width, 3), nn.LeakyReLU(NEGATIVE_SLOPE)]
+            layers += [conv(prev, width, 3), nn.LeakyReLU(NEGATIVE_SLOPE)]
             prev = width
-        layers.append(nn.Conv2d(prev, dim, k))
+        layers.append(conv(prev, dim, k))
         self.layers = nn.Sequential(*layers)
         self.in_channels, self.patch_size, self.channels, self.dim = in_channels, patch_size, tuple(channels), dim
+        self.dims = dims
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self.layers(x)
 
     def embed(self, patches: torch.Tensor) -> torch.Tensor:
-        """``patches: (N, C, p, p) -> (N, D)``."""
+        """``patches: (N, C, p, p)`` (3D: ``(N, C, p, p, p)``) ``-> (N, D)``."""
         return self.layers(patches).flatten(1)
 
 
 class PatchDecoder(nn.Module):
-    """``forward(z: (N, D)) -> (N, C, p, p)``."""
+    """``forward(z: (N, D)) -> (N, C, p, p)`` (3D: ``(N, C, p, p, p)``)."""
 
-    def __init__(self, out_channels: int, patch_size: int, channels: tuple[int, ...], dim: int):
+    def __init__(self, out_channels: int, patch_size: int, channels: tuple[int, ...], dim: int, dims: int = 2):
         super().__init__()
         self.k = final_kernel(patch_size, channels)
         self.width = channels[-1]
-        self.expand = nn.Linear(dim, self.width * self.k * self.k)
+        self.dims = dims
+        _, tconv = _layers(dims)
+        self.expand = nn.Linear(dim, self.width * self.k ** dims)
         layers: list[nn.Module] = [nn.LeakyReLU(NEGATIVE_SLOPE)]
         widths = list(channels[::-1]) + [out_channels]
         for i, (a, b) in enumerate(zip(widths[:-1], widths[1:])):
-            layers.append(nn.ConvTranspose2d(a, b, 3))
+            layers.append(tconv(a, b, 3))
             if i < len(widths) - 2:
                 layers.append(nn.LeakyReLU(NEGATIVE_SLOPE))
         self.layers = nn.Sequential(*layers)
 
     def forward(self, z: torch.Tensor) -> torch.Tensor:
-        h = self.expand(z).view(z.shape[0], self.width, self.k, self.k)
+        h = self.expand(z).view(z.shape[0], self.width, *(self.k,) * self.dims)
         return self.layers(h)
 
 
 class TwinAutoencoder(nn.Module):
     """Shared-weight autoencoder for both patches of a co-located pair.
 
-    ``forward(x: (N, C, p, p)) -> (z: (N, D), recon: (N, C, p, p))``.
+    ``forward(x: (N, C, p, p)) -> (z: (N, D), recon: (N, C, p, p))`` (3D: cubes).
     """
 
-    def __init__(self, in_channels: int, patch_size: int, channels: tuple[int, ...], dim: int):
+    def __init__(self, in_channels: int, patch_size: int, channels: tuple[int, ...], dim: int, dims: int = 2):
         super().__init__()
-        self.encoder = PatchEncoder(in_channels, patch_size, channels, dim)
-        self.decoder = PatchDecoder(in_channels, patch_size, channels, dim)
+        self.encoder = PatchEncoder(in_channels, patch_size, channels, dim, dims)
+        self.decoder = PatchDecoder(in_channels, patch_size, channels, dim, dims)
+        self.dims = dims
 
     def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         z = self.encoder.embed(x)
         return z, self.decoder(z)
 
 
-def build(in_channels: int, patch_size: int, channels: tuple[int, ...], dim: int, seed: int) -> TwinAutoencoder:
+def build(in_channels: int, patch_size: int, channels: tuple[int, ...], dim: int, seed: int,
+          dims: int = 2) -> TwinAutoencoder:
     """A freshly initialised model; the initial weights depend only on ``seed``.
 
     PyTorch's layer initialisers draw from the global generator, so it is forked and seeded
@@ -118,7 +133,7 @@ def build(in_channels: int, patch_size: int, channels: tuple[int, ...], dim: int
     """
     with torch.random.fork_rng(devices=[]):
         torch.manual_seed(seed)
-        return TwinAutoencoder(in_channels, patch_size, tuple(channels), dim)
+        return TwinAutoencoder(in_channels, patch_size, tuple(channels), dim, dims)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -192,8 +207,9 @@ def forward_matmul(model: TwinAutoencoder, x: torch.Tensor, dtype: torch.dtype =
     ``z: (N, D) float32`` and ``recon: (N, C, p, p) float32`` (a channels-last view).
 
     Same parameters, same function as ``model.forward`` (equal up to rounding in float32);
-    gradients flow to the float32 parameters.
+    gradients flow to the float32 parameters. 2D patches only (3D ones use the modules).
     """
+    assert model.dims == 2, "forward_matmul computes 2D patches only"
     n = x.shape[0]
     convs = [m for m in model.encoder.layers if isinstance(m, nn.Conv2d)]
     # The input is windowed in float32 and then cast: PyTorch's bfloat16 gather is several times

@@ -56,8 +56,11 @@ def recon_grid(x: np.ndarray, recon: np.ndarray, n: int = 8) -> np.ndarray:
     """Image of inputs above reconstructions: ``x, recon: (N, C, p, p)`` -> ``(2 * C * p, n * p)`` in [0, 1].
 
     Rows per contrast: input, then reconstruction; columns: the first ``n`` patches. Each
-    contrast is scaled by the input's range over the shown patches.
+    contrast is scaled by the input's range over the shown patches. Cubes ``(N, C, p, p, p)``
+    show their middle slice along the last axis.
     """
+    if x.ndim == 5:
+        x, recon = x[..., x.shape[-1] // 2], recon[..., recon.shape[-1] // 2]
     n = min(n, len(x))
     rows = []
     for c in range(x.shape[1]):
@@ -127,11 +130,15 @@ class Monitor:
         flat = {k: (v if isinstance(v, (int, float, str, bool)) else str(v)) for k, v in hparams.items()}
         self.tb.add_hparams(flat, {f"hparam/{k}": float(v) for k, v in metrics.items()}, run_name="hparams")
 
-    def projector(self, z: np.ndarray, val, subjects: tuple[str, ...], axis: int, step: int) -> None:
-        """Validation embeddings ``z: (N, D)`` of the first patches of ``val`` for the projector."""
+    def projector(self, z: np.ndarray, val, subjects: tuple[str, ...], axis: int | None, step: int) -> None:
+        """Validation embeddings ``z: (N, D)`` of the first patches of ``val`` for the projector.
+
+        Labels: the subject and the slice along ``axis`` (3D patches, ``axis=None``: the voxel "x,y,z")."""
         n = len(z)
-        meta = [[subjects[int(s)], str(int(c[axis]))] for s, c in zip(val.subject_a[:n], val.centres[:n])]
-        self.tb.add_embedding(np.asarray(z, dtype=np.float32), metadata=meta, metadata_header=["subject", "slice"],
+        where = (lambda c: str(int(c[axis]))) if axis is not None else (lambda c: ",".join(str(int(v)) for v in c))
+        meta = [[subjects[int(s)], where(c)] for s, c in zip(val.subject_a[:n], val.centres[:n])]
+        header = ["subject", "slice" if axis is not None else "voxel"]
+        self.tb.add_embedding(np.asarray(z, dtype=np.float32), metadata=meta, metadata_header=header,
                               global_step=step, tag="val_embeddings")
 
     def close(self) -> None:

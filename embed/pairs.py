@@ -2,7 +2,7 @@
 
 A 2D patch lies in a plane: the voxel axis ``axis`` is held fixed (see
 :func:`embed.cohort.plane_axis`) and the patch spans the two other voxel axes, in increasing
-order (rows = the lower axis). Voxels outside the grid read as zero, which is also what the
+order (rows = the lower axis). A 3D patch (``axis=None``) is a cube spanning all three axes. Voxels outside the grid read as zero, which is also what the
 dense embedding (:mod:`embed.dense`) sees at the border.
 
 Everything here is numpy; randomness comes only from the ``np.random.Generator`` passed in.
@@ -22,7 +22,7 @@ from .errors import ConfigError
 class Pairs:
     """A batch of co-located pairs.
 
-    ``a, b: (N, C, p, p) float32``; ``centres: (N, 3) int64`` voxel indices;
+    ``a, b: (N, C, p, p) float32`` (3D: ``(N, C, p, p, p)``); ``centres: (N, 3) int64`` voxel indices;
     ``subject_a, subject_b: (N,) int64`` subject indices into the cohort (always different).
     """
 
@@ -48,64 +48,78 @@ def split_controls(controls: np.ndarray, n_val: int, rng: np.random.Generator) -
     return np.sort(perm[n_val:]), np.sort(perm[:n_val])
 
 
-def check_patch_fits(shape: tuple[int, int, int], patch_size: int, axis: int) -> None:
-    """Raise ConfigError when the patch is larger than the in-plane extent of the grid."""
-    inplane = [shape[i] for i in range(3) if i != axis]
-    if patch_size > min(inplane):
+def spanned_axes(axis: int | None) -> list[int]:
+    """Voxel axes a patch spans: the two other than ``axis`` (2D), or all three (``axis=None``, 3D)."""
+    return [i for i in range(3) if i != axis]
+
+
+def patch_shape(patch_size: int, axis: int | None) -> tuple[int, ...]:
+    """``(p, p)`` for a 2D patch, ``(p, p, p)`` for a 3D one (``axis=None``)."""
+    return (patch_size,) * len(spanned_axes(axis))
+
+
+def check_patch_fits(shape: tuple[int, int, int], patch_size: int, axis: int | None) -> None:
+    """Raise ConfigError when the patch is larger than the grid along an axis it spans."""
+    extent = [shape[i] for i in spanned_axes(axis)]
+    if patch_size > min(extent):
+        where = "in-plane extent" if axis is not None else "extent"
         raise ConfigError(
-            f"patch.size={patch_size} is larger than the grid's in-plane extent {inplane} (grid {tuple(shape)}); "
+            f"patch.size={patch_size} is larger than the grid's {where} {extent} (grid {tuple(shape)}); "
             "choose a smaller patch.size"
         )
 
 
-def gather_patches(data: np.ndarray, subjects: np.ndarray, centres: np.ndarray, patch_size: int, axis: int) -> np.ndarray:
+def gather_patches(data: np.ndarray, subjects: np.ndarray, centres: np.ndarray, patch_size: int,
+                   axis: int | None) -> np.ndarray:
     """Patches of ``data: (S, C, X, Y, Z)`` at ``centres: (N, 3)`` of ``subjects: (N,)``.
 
-    Returns ``(N, C, p, p) float32``; voxels outside the grid are zero. Patches that lie inside
-    the grid are read from a sliding-window view of ``data`` (no copy of the volume, one gather);
-    the few that cross the border go through :func:`_gather_padded`.
+    Returns ``(N, C, p, p) float32`` (2D, ``axis`` held fixed) or ``(N, C, p, p, p)`` (3D,
+    ``axis=None``); voxels outside the grid are zero. Patches that lie inside the grid are read
+    from a sliding-window view of ``data`` (no copy of the volume, one gather); the few that
+    cross the border go through :func:`_gather_padded`.
     """
     centres = np.asarray(centres, dtype=np.int64).reshape(-1, 3)
     subjects = np.asarray(subjects, dtype=np.int64).reshape(-1)
     half = patch_size // 2
-    plane = [i for i in range(3) if i != axis]
+    span = spanned_axes(axis)
     shape = data.shape[2:]
     inner = np.ones(len(centres), dtype=bool)
-    for i in plane:
+    for i in span:
         inner &= (centres[:, i] >= half) & (centres[:, i] < shape[i] - half)
-    out = np.empty((len(centres), data.shape[1], patch_size, patch_size), dtype=np.float32)
+    out = np.empty((len(centres), data.shape[1]) + patch_shape(patch_size, axis), dtype=np.float32)
     if inner.any():
-        win = sliding_window_view(data, (patch_size, patch_size), axis=(plane[0] + 2, plane[1] + 2))
+        win = sliding_window_view(data, (patch_size,) * len(span), axis=tuple(i + 2 for i in span))
         c = centres[inner]
-        idx = [c[:, i] - (half if i != axis else 0) for i in range(3)]
-        out[inner] = win[subjects[inner], :, idx[0], idx[1], idx[2]]  # (n, C, p, p)
+        idx = [c[:, i] - (half if i in span else 0) for i in range(3)]
+        out[inner] = win[subjects[inner], :, idx[0], idx[1], idx[2]]  # (n, C, p, p[, p])
     if not inner.all():
         out[~inner] = _gather_padded(data, subjects[~inner], centres[~inner], patch_size, axis)
     return out
 
 
-def _gather_padded(data: np.ndarray, subjects: np.ndarray, centres: np.ndarray, patch_size: int, axis: int) -> np.ndarray:
+def _gather_padded(data: np.ndarray, subjects: np.ndarray, centres: np.ndarray, patch_size: int,
+                   axis: int | None) -> np.ndarray:
     """:func:`gather_patches` by explicit index arrays, zero outside the grid (any centre)."""
     half = patch_size // 2
-    offsets = np.arange(patch_size) - half
-    plane = [i for i in range(3) if i != axis]
-    idx = [np.broadcast_to(centres[:, i][:, None, None], (len(centres), patch_size, patch_size)) for i in range(3)]
-    full = (len(centres), patch_size, patch_size)
-    idx[plane[0]] = np.broadcast_to(centres[:, plane[0]][:, None, None] + offsets[None, :, None], full)
-    idx[plane[1]] = np.broadcast_to(centres[:, plane[1]][:, None, None] + offsets[None, None, :], full)
+    span = spanned_axes(axis)
+    full = (len(centres),) + patch_shape(patch_size, axis)
+    offsets = np.meshgrid(*[np.arange(patch_size) - half] * len(span), indexing="ij")  # one per spanned axis
+    idx = [np.broadcast_to(centres[:, i].reshape((-1,) + (1,) * len(span)), full) for i in range(3)]
+    for k, i in enumerate(span):
+        idx[i] = idx[i] + offsets[k][None]
     shape = data.shape[2:]
-    inside = np.ones(idx[0].shape, dtype=bool)
-    for i in plane:
+    inside = np.ones(full, dtype=bool)
+    for i in span:
         inside &= (idx[i] >= 0) & (idx[i] < shape[i])
         idx[i] = np.clip(idx[i], 0, shape[i] - 1)
-    s = np.broadcast_to(subjects[:, None, None], idx[0].shape)
-    out = data[s, :, idx[0], idx[1], idx[2]]  # (N, p, p, C): advanced indices go first
+    s = np.broadcast_to(subjects.reshape((-1,) + (1,) * len(span)), full)
+    out = data[s, :, idx[0], idx[1], idx[2]]  # (N, p, p[, p], C): advanced indices go first
     out = out * inside[..., None]
-    return np.ascontiguousarray(out.transpose(0, 3, 1, 2), dtype=np.float32)
+    return np.ascontiguousarray(np.moveaxis(out, -1, 1), dtype=np.float32)
 
 
 def sample_pairs(
-    data: np.ndarray, pool: np.ndarray, voxels: np.ndarray, n: int, patch_size: int, axis: int,
+    data: np.ndarray, pool: np.ndarray, voxels: np.ndarray, n: int, patch_size: int, axis: int | None,
     rng: np.random.Generator,
 ) -> Pairs:
     """Draw ``n`` co-located pairs.
@@ -131,7 +145,7 @@ def sample_pairs(
 class RetrievalSet:
     """Patches for the co-location retrieval score.
 
-    ``query: (K, C, p, p)`` from subject A at K voxels; ``candidates: (K, R, C, p, p)`` from
+    ``query: (K, C, p, p)`` (3D: ``(K, C, p, p, p)``) from subject A at K voxels; ``candidates: (K, R, C, p, p)`` from
     subject B at every voxel of the ``(2r + 1)^3`` cube around each of them; ``true_index``: the
     candidate at the query's own voxel; ``centres: (K, 3)``.
     """
@@ -143,7 +157,7 @@ class RetrievalSet:
 
 
 def sample_retrieval(data: np.ndarray, subject_a: int, subject_b: int, voxels: np.ndarray, k: int, patch_size: int,
-                     axis: int, rng: np.random.Generator, radius: int = 1) -> RetrievalSet:
+                     axis: int | None, rng: np.random.Generator, radius: int = 1) -> RetrievalSet:
     """Draw up to ``k`` voxels of ``voxels: (K, 3)`` whose cube of ``radius`` lies in the grid."""
     shape = np.array(data.shape[2:])
     keep = np.all((voxels >= radius) & (voxels < shape - radius), axis=1)

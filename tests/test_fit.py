@@ -14,7 +14,8 @@ from embed import load_encoder
 from embed.cohort import load_cohort
 from embed.config import from_dict, load_config, to_dict
 from embed.errors import ConfigError
-from embed.fit import check_setup, train
+from embed.fit import train
+from embed.runsetup import check_setup
 
 from .conftest import TINY_OVERRIDES
 
@@ -40,7 +41,7 @@ def test_run_directory_holds_every_output(tiny_run, tiny_manifest):
     assert ckpt["step"] == 30
     meta = json.loads((run / "run.json").read_text())
     assert meta["contrasts"] == ["T1w", "FLAIR"]
-    assert meta["patch"] == {"size": 5, "plane": "axial", "axis": 2, "padding": "zeros"}
+    assert meta["patch"] == {"size": 5, "dims": 2, "plane": "axial", "axis": 2, "padding": "zeros"}
     assert len(meta["training"]["train_controls"]) == 4 and len(meta["training"]["val_controls"]) == 2
     assert not set(meta["training"]["train_controls"]) & set(meta["training"]["val_controls"])
     assert not list(run.rglob(".*partial*"))
@@ -145,6 +146,7 @@ def test_init_starts_from_the_bundle(tiny_run, tiny_manifest, tmp_path):
     (["patch.size=7"], r"the bundle's patch size is 5, this run's is 7; set patch\.size=5"),
     (["patch.plane=coronal"], r"the bundle's patch voxel axis is 2, this run's is 1; set patch\.plane='axial'"),
     (["model.channels=[8, 8]"], r"the bundle's model\.channels is \[8, 16\], this run's is \[8, 8\]"),
+    (["patch.dims=3"], r"the bundle's patch dims is 2, this run's is 3; set patch\.dims=2"),
 ])
 def test_init_refuses_a_bundle_that_does_not_fit(tiny_run, tiny_manifest, tmp_path, extra, match):
     from embed.errors import BundleError
@@ -168,12 +170,12 @@ def test_init_from_the_cli(tiny_run, tiny_manifest, tmp_path, capsys):
 
 
 def test_setup_refuses_nothing_to_train_and_an_unsplittable_batch(tiny_manifest, monkeypatch):
-    import embed.fit
+    import embed.runsetup
 
     cohort = load_cohort(tiny_manifest, progress=False)
     with pytest.raises(ConfigError, match=r"loss\.reconstruction_weight and loss\.agreement_weight are both 0"):
         check_setup(_cfg(tiny_manifest, "loss.reconstruction_weight=0", "loss.agreement_weight=0"), cohort)
-    monkeypatch.setattr(embed.fit, "world_info", lambda: (0, 3))
+    monkeypatch.setattr(embed.runsetup, "world_info", lambda: (0, 3))
     with pytest.raises(ConfigError, match=r"train\.batch_size=32 does not split over 3 processes; use a multiple of 3"):
         check_setup(_cfg(tiny_manifest), cohort)
 
