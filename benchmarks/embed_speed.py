@@ -1,12 +1,13 @@
 """Embedding a whole 1 mm two-contrast volume: dense path vs per-patch path, in one run.
 
-    python benchmarks/embed_speed.py [--patch 15] [--sample 200000] [--dim 32] [--repeat 3]
+    python benchmarks/embed_speed.py [--patch 15] [--dims 2|3] [--sample 200000] [--dim 32] [--repeat 3]
 
 The volume is one synthetic subject (T1w-like and FLAIR-like) built from the MNI152 2009 1 mm
 templates that nilearn ships (grid 197 x 233 x 189, about 1.9 million brain voxels), z-scored in
 its mask; the encoder has the demo architecture (channels [32, 64], dim 32) with random weights
 (speed does not depend on the weights) and a 15-voxel patch: the demo's 14 mm patch (7 voxels of
-2 mm) is 15 voxels on a 1 mm grid (``--patch 7`` measures the demo grid's voxel count). Printed:
+2 mm) is 15 voxels on a 1 mm grid (``--patch 7`` measures the demo grid's voxel count); axial
+squares by default, cubes with ``--dims 3``. Printed:
 
 - dense path (``Encoder.embed_masked``: whole slices, only mask voxels kept) in fp32 and bf16,
   voxels/s and seconds per volume;
@@ -43,12 +44,14 @@ def make_volume():
     return vol, mask
 
 
-def make_encoder(dim: int, patch: int = 7):
+def make_encoder(dim: int, patch: int = 7, dims: int = 2):
     from embed.dense import Encoder
     from embed.model import build
 
-    module = build(2, patch, (32, 64), dim, 0).encoder
-    return Encoder(module, {"contrasts": ["T1w", "FLAIR"], "patch": {"axis": 2, "plane": "axial", "size": patch}})
+    module = build(2, patch, (32, 64), dim, 0, dims).encoder
+    card_patch = ({"axis": 2, "plane": "axial", "size": patch, "dims": 2} if dims == 2
+                  else {"axis": None, "size": patch, "dims": 3})
+    return Encoder(module, {"contrasts": ["T1w", "FLAIR"], "patch": card_patch})
 
 
 def vm_hwm_mb() -> float:
@@ -59,7 +62,7 @@ def vm_hwm_mb() -> float:
     raise RuntimeError("no VmHWM in /proc/self/status")
 
 
-def peak_rss_child(saved: str, mode: str, dim: int, patch: int) -> tuple[float, float]:
+def peak_rss_child(saved: str, mode: str, dim: int, patch: int, dims: int) -> tuple[float, float]:
     """Peak RSS (MB) of a fresh process that loads the saved volume and embeds it (``masked`` or ``full``).
 
     Returns (peak after loading the volume and the encoder, peak after embedding).
@@ -68,7 +71,7 @@ def peak_rss_child(saved: str, mode: str, dim: int, patch: int) -> tuple[float, 
     # child started by fork + exec inherits from the parent's peak.
     code = (f"import numpy as np, sys; sys.path.insert(0, {str(Path(__file__).parents[1])!r}); "
             f"from benchmarks.embed_speed import make_encoder, vm_hwm_mb; d = np.load({saved!r}); "
-            f"vol, mask = d['vol'], d['mask']; enc = make_encoder({dim}, {patch}); "
+            f"vol, mask = d['vol'], d['mask']; enc = make_encoder({dim}, {patch}, {dims}); "
             f"enc.embed_masked(vol[:, :, :, 90:94], mask[:, :, 90:94]); base = vm_hwm_mb(); "
             f"enc.{'embed_masked' if mode == 'masked' else 'embed_volume'}(vol, mask); "
             f"print(base, vm_hwm_mb())")
@@ -86,15 +89,16 @@ def main() -> None:
     ap.add_argument("--sample", type=int, default=200_000, help="voxels for the per-patch path")
     ap.add_argument("--dim", type=int, default=32, help="embedding size")
     ap.add_argument("--repeat", type=int, default=3, help="timed runs per path; the median is printed")
+    ap.add_argument("--dims", type=int, choices=(2, 3), default=2, help="2 = axial squares, 3 = cubes")
     ap.add_argument("--patch", type=int, default=15, help="patch side in voxels (default 15: the demo's 14 mm patch at 1 mm; the demo grid's 7)")
     args = ap.parse_args()
 
     t0 = time.perf_counter()
     vol, mask = make_volume()
-    enc = make_encoder(args.dim, args.patch)
+    enc = make_encoder(args.dim, args.patch, args.dims)
     n_vox = int(mask.sum())
     print(f"volume {vol.shape} ({n_vox} mask voxels) built in {time.perf_counter() - t0:.1f} s; "
-          f"{torch.get_num_threads()} threads; patch {args.patch}, channels [32, 64], dim {args.dim}")
+          f"{torch.get_num_threads()} threads; patch {args.patch} ({args.dims}D), channels [32, 64], dim {args.dim}")
 
     enc.embed_masked(vol[:, :, :, 90:94], mask[:, :, 90:94])  # warm-up (one-off allocator and kernel setup)
     times, results = {}, {}
@@ -112,7 +116,8 @@ def main() -> None:
     runs = []
     for _ in range(args.repeat):
         t0 = time.perf_counter()
-        patches = gather_patches(vol[None], np.zeros(len(pick), np.int64), voxels[pick], args.patch, 2)
+        patches = gather_patches(vol[None], np.zeros(len(pick), np.int64), voxels[pick], args.patch,
+                                 2 if args.dims == 2 else None)
         z = enc.embed_patches(patches, batch_size=4096)
         runs.append(time.perf_counter() - t0)
     t_patch = float(np.median(runs))
@@ -134,7 +139,7 @@ def main() -> None:
         saved = str(Path(tmp) / "volume.npz")
         np.savez(saved, vol=vol, mask=mask)
         for mode in ("masked", "full"):
-            before, after = peak_rss_child(saved, mode, args.dim, args.patch)
+            before, after = peak_rss_child(saved, mode, args.dim, args.patch, args.dims)
             print(f"peak RSS, {mode:>6} output: {after:>6.0f} MB (volume and encoder loaded: {before:.0f} MB; "
                   f"embedding adds {after - before:.0f} MB)")
 

@@ -1,12 +1,14 @@
 """Training speed: the plain fp32 step against the project's default path, measured in one run.
 
-    python benchmarks/train_speed.py [--repeats 5] [--steps 20] [--threads 0] [--loss-check STEPS]
+    python benchmarks/train_speed.py [--repeats 5] [--steps 20] [--threads 0] [--dims 2|3] [--loss-check STEPS]
 
 Prints co-located pairs per second (sampling included) for
   (a) plain: the index-array patch gather and a float32 eager step of the torch modules
-      (Conv2d / ConvTranspose2d), as the first version of the project trained;
+      (Conv2d / ConvTranspose2d; Conv3d / ConvTranspose3d for cubes), as the first version of the
+      project trained;
   (b) default: what `twinpatch train` does with the built-in configuration (sliding-window
-      gather, ``train.precision`` = bf16: the same network as bfloat16 matrix products);
+      gather, then ``train.precision``: bf16 = the same network as bfloat16 matrix products,
+      fp32 = the modules); ``--dims`` and ``--precision`` measure another patch shape or precision;
 and the achieved GFLOP/s of both against a matrix-product peak measured in the same run
 (torch.mm on 2048 x 2048 float32 and bfloat16 matrices). FLOPs per step are counted once, on the
 plain step, by torch.utils.flop_counter.FlopCounterMode; both paths compute the same network.
@@ -53,13 +55,13 @@ GRID = (99, 117, 95)  # the demo grid at 2 mm
 SUBJECTS = 20
 
 
-def plain_step(model, opt, data, pool, voxels, n, p, rng):
+def plain_step(model, opt, data, pool, voxels, n, p, rng, axis):
     """Index-array gather + fp32 module step (the baseline)."""
     centres = voxels[rng.integers(0, len(voxels), size=n)]
     i = rng.integers(0, len(pool), size=n)
     j = (i + rng.integers(1, len(pool), size=n)) % len(pool)
-    a = torch.from_numpy(_gather_padded(data, pool[i], centres, p, 2))
-    b = torch.from_numpy(_gather_padded(data, pool[j], centres, p, 2))
+    a = torch.from_numpy(_gather_padded(data, pool[i], centres, p, axis))
+    b = torch.from_numpy(_gather_padded(data, pool[j], centres, p, axis))
     z, r = model(torch.cat([a, b]))
     loss = pair_loss(a, b, r[:n], r[n:], z[:n], z[n:], 0.5)["total"]
     opt.zero_grad(set_to_none=True)
@@ -67,13 +69,13 @@ def plain_step(model, opt, data, pool, voxels, n, p, rng):
     opt.step()
 
 
-def default_step(model, opt, data, pool, voxels, n, p, rng, precision):
+def default_step(model, opt, data, pool, voxels, n, p, rng, precision, axis):
     """The training loop's step (embed.fit.train) with the default configuration."""
     centres = voxels[rng.integers(0, len(voxels), size=n)]
     i = rng.integers(0, len(pool), size=n)
     j = (i + rng.integers(1, len(pool), size=n)) % len(pool)
-    a = torch.from_numpy(gather_patches(data, pool[i], centres, p, 2))
-    b = torch.from_numpy(gather_patches(data, pool[j], centres, p, 2))
+    a = torch.from_numpy(gather_patches(data, pool[i], centres, p, axis))
+    b = torch.from_numpy(gather_patches(data, pool[j], centres, p, axis))
     z1, z2, r1, r2 = forward_pair(model, a, b, precision)
     loss = pair_loss(a, b, r1, r2, z1, z2, 0.5)["total"]
     opt.zero_grad(set_to_none=True)
@@ -96,14 +98,13 @@ def mm_peak(dtype: torch.dtype, size: int = 2048, repeats: int = 5) -> float:
     return 2 * size ** 3 / best / 1e9
 
 
-def loss_check(steps: int) -> None:
+def loss_check(cfg: Config, steps: int) -> None:
     from pathlib import Path
 
     from embed.cohort import load_cohort
     from embed.fit import train
     from embed.jobs import ensure_demo_cohort
 
-    cfg = Config()
     manifest = Path(cfg.cohort.manifest)
     ensure_demo_cohort(manifest, print)
     cohort = load_cohort(manifest, progress=False)
@@ -124,13 +125,20 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=5, help="alternating measurement blocks (default 5)")
     ap.add_argument("--steps", type=int, default=20, help="training steps per block (default 20)")
     ap.add_argument("--threads", type=int, default=0, help="torch threads (default 0 = all cores)")
+    ap.add_argument("--dims", type=int, choices=(2, 3), default=0,
+                    help="patch dimensions to measure (default: the built-in configuration's patch.dims)")
+    ap.add_argument("--precision", choices=("fp32", "bf16"), default="",
+                    help="precision of the measured path (default: the built-in configuration's train.precision)")
     ap.add_argument("--loss-check", type=int, default=0, metavar="STEPS",
                     help="also train the demo in fp32 and bf16 for STEPS steps and compare validation losses")
     args = ap.parse_args()
     if args.threads:
         torch.set_num_threads(args.threads)
     cfg = Config()
-    n, p, ch, dim = cfg.train.batch_size, cfg.patch.size, cfg.model.channels, cfg.model.dim
+    cfg = replace(cfg, patch=replace(cfg.patch, dims=args.dims or cfg.patch.dims),
+                  train=replace(cfg.train, precision=args.precision or cfg.train.precision))
+    n, p, ch, dim, dims = cfg.train.batch_size, cfg.patch.size, cfg.model.channels, cfg.model.dim, cfg.patch.dims
+    axis = 2 if dims == 2 else None  # axial squares or cubes
     n_in = len(cfg.cohort.contrasts) or 2
     rng = np.random.default_rng(0)
     data = rng.normal(size=(SUBJECTS, n_in) + GRID).astype(np.float32)
@@ -138,12 +146,12 @@ def main() -> None:
     box[10:-10, 10:-10, 10:-10] = True  # mask voxels away from the border, as in a brain mask
     voxels = np.argwhere(box)
     pool = np.arange(SUBJECTS)
-    models = {k: build(n_in, p, ch, dim, 0) for k in ("plain", "default")}
+    models = {k: build(n_in, p, ch, dim, 0, dims) for k in ("plain", "default")}
     opts = {k: torch.optim.Adam(m.parameters(), lr=cfg.train.lr) for k, m in models.items()}
     steps = {
-        "plain": lambda: plain_step(models["plain"], opts["plain"], data, pool, voxels, n, p, rng),
+        "plain": lambda: plain_step(models["plain"], opts["plain"], data, pool, voxels, n, p, rng, axis),
         "default": lambda: default_step(models["default"], opts["default"], data, pool, voxels, n, p, rng,
-                                        cfg.train.precision),
+                                        cfg.train.precision, axis),
     }
     with FlopCounterMode(display=False) as counter:
         steps["plain"]()
@@ -157,9 +165,9 @@ def main() -> None:
         for k, fn in steps.items():
             rates[k].append(n / timed(fn, args.steps))
     ratio = statistics.median(d / a for a, d in zip(rates["plain"], rates["default"]))
-    print(f"threads {torch.get_num_threads()}; batch {n} pairs; {n_in} input channel(s); patch {p}; "
+    print(f"threads {torch.get_num_threads()}; batch {n} pairs; {n_in} input channel(s); patch {p} ({dims}D); "
           f"widths {list(ch)}; dim {dim}; "
-          f"default precision {cfg.train.precision}; {flops / n / 1e6:.2f} MFLOP per pair (forward + backward)")
+          f"measured precision {cfg.train.precision}; {flops / n / 1e6:.2f} MFLOP per pair (forward + backward)")
     print(f"matmul peak in this run: fp32 {peaks['fp32']:.0f} GFLOP/s, bf16 {peaks['bf16']:.0f} GFLOP/s")
     for k, peak_key in (("plain", "fp32"), ("default", cfg.train.precision)):
         med = statistics.median(rates[k])
@@ -168,7 +176,7 @@ def main() -> None:
               f"{gf:.0f} GFLOP/s = {gf / peaks[peak_key]:.0%} of the {peak_key} matmul peak")
     print(f"default / plain: {ratio:.2f}x (median of per-block ratios)")
     if args.loss_check:
-        loss_check(args.loss_check)
+        loss_check(cfg, args.loss_check)
 
 
 if __name__ == "__main__":

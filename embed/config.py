@@ -40,7 +40,7 @@ class CohortConfig:
 class PatchConfig:
     size: int = 7  # voxels per side (odd); about 15 mm of tissue is common practice, no source
     plane: str = "axial"  # plane of a 2D patch (unused by 3D patches)
-    dims: int = 2  # 2 = square patches in `plane`; 3 = cubes (3D convolutions, slower to train)
+    dims: int = 3  # 3 = cubes (3D convolutions; chosen by the 3D sweep); 2 = squares in `plane`, faster
 
 
 @dataclass(frozen=True)
@@ -70,7 +70,7 @@ class TrainConfig:
     val_every: int = 100
     val_pairs: int = 1024
     threads: int = 0  # torch intra-op threads; 0 = all cores
-    precision: str = "bf16"  # bf16: bfloat16 matrix products (fast path); fp32: float32 convolutions
+    precision: str = "fp32"  # fp32: float32 convolutions; bf16: bfloat16 matrix products (faster for 2D patches only)
     checkpoint_every: int = 250  # steps between checkpoints (also written at the end and on Ctrl-C)
     deterministic: bool = False  # torch.use_deterministic_algorithms(True)
     early_stop: str = "none"  # validation metric to stop on: none | total | reconstruction | retrieval | cos_gap

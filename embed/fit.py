@@ -77,16 +77,11 @@ def load_checkpoint(path: Path) -> dict:
 def forward_pair(model: TwinAutoencoder, a: torch.Tensor, b: torch.Tensor, precision: str):
     """One pass over both halves as one batch. Returns ``z1, z2, r1, r2`` in float32.
 
-    ``bf16``: :func:`embed.model.forward_matmul` in bfloat16 (3D patches: the modules under
-    bfloat16 autocast); ``fp32``: the modules.
+    ``bf16``: :func:`embed.model.forward_matmul` in bfloat16; ``fp32``: the modules.
     """
     x = torch.cat([a, b])
-    if precision == "bf16" and model.dims == 2:
+    if precision == "bf16":
         z, r = forward_matmul(model, x, torch.bfloat16)
-    elif precision == "bf16":  # 3D patches: the modules' own bfloat16 convolutions
-        with torch.autocast("cpu", dtype=torch.bfloat16):
-            z, r = model(x)
-        z, r = z.float(), r.float()
     else:
         z, r = model(x)
     n = len(a)

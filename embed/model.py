@@ -141,35 +141,42 @@ def build(in_channels: int, patch_size: int, channels: tuple[int, ...], dim: int
 
 
 @lru_cache(maxsize=None)
-def _window_index(out_side: int, k: int) -> torch.Tensor:
-    """Flat in-plane positions of every ``k x k`` window: ``(out_side**2 * k * k,)`` int64.
+def _window_index(out_side: int, k: int, dims: int = 2) -> torch.Tensor:
+    """Flat positions of every ``k ** dims`` window in a ``side ** dims`` grid, ``side = out_side + k - 1``:
+    ``(out_side**dims * k**dims,)`` int64, window position major, offset minor.
 
-    Entry ``((y * out_side + x) * k + ky) * k + kx`` is ``(y + ky) * side + (x + kx)`` with
-    ``side = out_side + k - 1``.
+    2D: entry ``((y * out_side + x) * k + ky) * k + kx`` is ``(y + ky) * side + (x + kx)``.
     """
     side = out_side + k - 1
-    y, x, ky, kx = torch.meshgrid(*(torch.arange(n) for n in (out_side, out_side, k, k)), indexing="ij")
-    return ((y + ky) * side + (x + kx)).reshape(-1)
+    grids = torch.meshgrid(*(torch.arange(n) for n in (out_side,) * dims + (k,) * dims), indexing="ij")
+    flat = torch.zeros_like(grids[0])
+    for a in range(dims):  # position along axis a = window corner + offset
+        flat = flat * side + grids[a] + grids[dims + a]
+    return flat.reshape(-1)
 
 
 def windows(h: torch.Tensor, k: int) -> torch.Tensor:
-    """im2col, channels last: ``h: (N, s, s, c)`` -> ``(N, s-k+1, s-k+1, k, k, c)`` (a copy)."""
-    n, s, _, c = h.shape
+    """im2col, channels last: ``h: (N, s, s, c)`` -> ``(N, o, o, k, k, c)``, ``o = s - k + 1`` (a copy).
+
+    3D: ``(N, s, s, s, c)`` -> ``(N, o, o, o, k, k, k, c)``.
+    """
+    n, s, c, dims = h.shape[0], h.shape[1], h.shape[-1], h.dim() - 2
     o = s - k + 1
-    return h.reshape(n, s * s, c).index_select(1, _window_index(o, k)).view(n, o, o, k, k, c)
+    flat = h.reshape(n, s ** dims, c).index_select(1, _window_index(o, k, dims))
+    return flat.view((n,) + (o,) * dims + (k,) * dims + (c,))
 
 
 def overlap_add(cols: torch.Tensor, k: int, out: torch.Tensor | None = None) -> torch.Tensor:
-    """Adjoint of :func:`windows`: ``cols: (N, o, o, k, k, c)`` -> ``(N, o+k-1, o+k-1, c)``.
+    """Adjoint of :func:`windows`: ``cols: (N, o, o, k, k, c)`` -> ``(N, o+k-1, o+k-1, c)`` (3D alike).
 
-    Adds into ``out: (N, (o+k-1)**2, c)`` when given (e.g. pre-filled with a bias).
+    Adds into ``out: (N, (o+k-1)**dims, c)`` when given (e.g. pre-filled with a bias).
     """
-    n, o, _, _, _, c = cols.shape
+    n, o, c, dims = cols.shape[0], cols.shape[1], cols.shape[-1], (cols.dim() - 2) // 2
     side = o + k - 1
     if out is None:
-        out = cols.new_zeros((n, side * side, c))
-    out.index_add_(1, _window_index(o, k), cols.reshape(n, o * o * k * k, c))
-    return out.view(n, side, side, c)
+        out = cols.new_zeros((n, side ** dims, c))
+    out.index_add_(1, _window_index(o, k, dims), cols.reshape(n, (o * k) ** dims, c))
+    return out.view((n,) + (side,) * dims + (c,))
 
 
 class _Windows(torch.autograd.Function):
@@ -191,52 +198,55 @@ class _OverlapAddBias(torch.autograd.Function):
     @staticmethod
     def forward(ctx, cols, bias, k, out_dtype):
         ctx.k, ctx.cols_dtype, ctx.bias_dtype = k, cols.dtype, bias.dtype
-        n, o, _, _, _, c = cols.shape
-        side = o + k - 1
-        out = bias.to(out_dtype).expand(n, side * side, c).contiguous()
+        n, o, c, dims = cols.shape[0], cols.shape[1], cols.shape[-1], (cols.dim() - 2) // 2
+        out = bias.to(out_dtype).expand(n, (o + k - 1) ** dims, c).contiguous()
         return overlap_add(cols.to(out_dtype), k, out)
 
     @staticmethod
     def backward(ctx, grad):
         grad = grad.contiguous()
-        return windows(grad.to(ctx.cols_dtype), ctx.k), grad.sum((0, 1, 2)).to(ctx.bias_dtype), None, None
+        spatial = tuple(range(grad.dim() - 1))
+        return windows(grad.to(ctx.cols_dtype), ctx.k), grad.sum(spatial).to(ctx.bias_dtype), None, None
 
 
 def forward_matmul(model: TwinAutoencoder, x: torch.Tensor, dtype: torch.dtype = torch.bfloat16):
     """``model(x)`` as matrix products in ``dtype``: ``x: (N, C, p, p) float32`` ->
-    ``z: (N, D) float32`` and ``recon: (N, C, p, p) float32`` (a channels-last view).
+    ``z: (N, D) float32`` and ``recon: (N, C, p, p) float32`` (a channels-last view); 3D patches
+    ``(N, C, p, p, p)`` alike.
 
     Same parameters, same function as ``model.forward`` (equal up to rounding in float32);
-    gradients flow to the float32 parameters. 2D patches only (3D ones use the modules).
+    gradients flow to the float32 parameters.
     """
-    assert model.dims == 2, "forward_matmul computes 2D patches only"
-    n = x.shape[0]
-    convs = [m for m in model.encoder.layers if isinstance(m, nn.Conv2d)]
+    n, dims = x.shape[0], model.dims
+    sp = tuple(range(2, 2 + dims))  # spatial axes of a module weight
+    conv_type, tconv_type = (nn.Conv2d, nn.ConvTranspose2d) if dims == 2 else (nn.Conv3d, nn.ConvTranspose3d)
+    convs = [m for m in model.encoder.layers if isinstance(m, conv_type)]
     # The input is windowed in float32 and then cast: PyTorch's bfloat16 gather is several times
     # slower than its float32 one for 1 or 2 channels (measured: benchmarks/train_speed.py notes).
-    h = x.permute(0, 2, 3, 1)  # (N, p, p, C) float32
+    h = x.permute(0, *sp, 1)  # (N, p, p[, p], C) float32
     for conv in convs[:-1]:
-        cols = _Windows.apply(h, conv.kernel_size[0], dtype)  # (N, o, o, 3, 3, c)
-        o = cols.shape[1]
-        w = conv.weight.permute(2, 3, 1, 0).reshape(-1, conv.out_channels).to(dtype)  # rows (ky, kx, c)
-        h = torch.addmm(conv.bias.to(dtype), cols.view(n * o * o, -1), w)
-        h = F.leaky_relu(h, NEGATIVE_SLOPE).view(n, o, o, conv.out_channels)
+        cols = _Windows.apply(h, conv.kernel_size[0], dtype)  # (N, o.., 3.., c)
+        o = cols.shape[1:1 + dims]
+        w = conv.weight.permute(*sp, 1, 0).reshape(-1, conv.out_channels).to(dtype)  # rows (offsets, c)
+        h = torch.addmm(conv.bias.to(dtype), cols.reshape(n * o.numel(), -1), w)
+        h = F.leaky_relu(h, NEGATIVE_SLOPE).view(n, *o, conv.out_channels)
     last = convs[-1]
-    w = last.weight.permute(2, 3, 1, 0).reshape(-1, last.out_channels).to(dtype)  # rows (y, x, c)
+    w = last.weight.permute(*sp, 1, 0).reshape(-1, last.out_channels).to(dtype)  # rows (positions, c)
     z = torch.addmm(last.bias.to(dtype), h.reshape(n, -1), w)
     dec = model.decoder
     k, width = dec.k, dec.width
-    # The module reads the linear output as (c, y, x); reorder its rows to (y, x, c).
-    we = dec.expand.weight.view(width, k, k, -1).permute(1, 2, 0, 3).reshape(width * k * k, -1)
-    be = dec.expand.bias.view(width, k, k).permute(1, 2, 0).reshape(-1)
-    h = F.leaky_relu(torch.addmm(be.to(dtype), z, we.t().to(dtype)), NEGATIVE_SLOPE).view(n, k, k, width)
-    tconvs = [m for m in dec.layers if isinstance(m, nn.ConvTranspose2d)]
+    # The module reads the linear output as (c, positions); reorder its rows to (positions, c).
+    we = dec.expand.weight.view(width, *(k,) * dims, -1).permute(*range(1, dims + 1), 0, dims + 1)
+    we = we.reshape(width * k ** dims, -1)
+    be = dec.expand.bias.view(width, *(k,) * dims).permute(*range(1, dims + 1), 0).reshape(-1)
+    h = F.leaky_relu(torch.addmm(be.to(dtype), z, we.t().to(dtype)), NEGATIVE_SLOPE).view(n, *(k,) * dims, width)
+    tconvs = [m for m in dec.layers if isinstance(m, tconv_type)]
     for i, tconv in enumerate(tconvs):
-        s, kt, cout = h.shape[1], tconv.kernel_size[0], tconv.out_channels
-        w = tconv.weight.permute(0, 2, 3, 1).reshape(tconv.in_channels, -1).to(dtype)  # cols (ky, kx, c)
-        cols = torch.mm(h.reshape(n * s * s, -1), w).view(n, s, s, kt, kt, cout)
+        s, kt, cout = h.shape[1:1 + dims], tconv.kernel_size[0], tconv.out_channels
+        w = tconv.weight.permute(0, *sp, 1).reshape(tconv.in_channels, -1).to(dtype)  # cols (offsets, c)
+        cols = torch.mm(h.reshape(n * s.numel(), -1), w).view(n, *s, *(kt,) * dims, cout)
         final = i == len(tconvs) - 1
         h = _OverlapAddBias.apply(cols, tconv.bias, kt, torch.float32 if final else dtype)
         if not final:
             h = F.leaky_relu(h, NEGATIVE_SLOPE)
-    return z.float(), h.permute(0, 3, 1, 2)
+    return z.float(), h.permute(0, dims + 1, *range(1, dims + 1))

@@ -16,7 +16,7 @@ from embed.dense import Encoder
 from embed.errors import ConfigError
 from embed.features import encoder_reach
 from embed.fit import forward_pair, train
-from embed.model import build
+from embed.model import build, forward_matmul
 from embed.monitor import recon_grid
 from embed.pairs import check_patch_fits, gather_patches
 
@@ -74,6 +74,21 @@ def test_dense_3d_embedding_equals_per_cube_embedding():
     assert not dense[:, ~mask].any()
     np.testing.assert_allclose(enc.embed_masked(vol, mask), want, atol=1e-5)
     assert encoder_reach(enc) == (2, 2, 2)
+
+
+def test_matmul_path_computes_the_3d_modules():
+    # Same function and same gradients as the Conv3d / ConvTranspose3d modules (float32 matrix products).
+    model = build(2, 7, (4, 6), 5, 0, dims=3)
+    x = torch.randn(6, 2, 7, 7, 7)
+    z0, r0 = model(x)
+    z1, r1 = forward_matmul(model, x, torch.float32)
+    torch.testing.assert_close(z1, z0, rtol=1e-5, atol=1e-5)
+    torch.testing.assert_close(r1, r0, rtol=1e-5, atol=1e-5)
+    params = list(model.parameters())
+    g0 = torch.autograd.grad(z0.square().sum() + r0.square().sum(), params)
+    g1 = torch.autograd.grad(z1.square().sum() + r1.square().sum(), params)
+    for a, b in zip(g0, g1):
+        torch.testing.assert_close(b, a, rtol=1e-4, atol=1e-5)
 
 
 def test_bf16_pair_forward_is_close_to_fp32():
