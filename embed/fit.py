@@ -28,7 +28,6 @@ import math
 import signal
 import threading
 import time
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -43,22 +42,12 @@ from .objective import (agreement, agreement_space, agreement_weight, cosine_dia
                         pair_loss, prior_draw, retrieval_score)
 from .pairs import Pairs, RetrievalSet, sample_pairs, sample_retrieval, split_controls
 from .parallel import average_gradients, world_info
-from .runsetup import check_init_bundle, check_setup, run_card
+from .runsetup import TrainResult, check_init_bundle, check_setup, run_card
 
 LOG_EVERY = 10  # steps between training-metric lines
 CHECKPOINT = Path("checkpoints") / "last.pt"
 # Early-stopping metrics and their direction (+1: higher is better).
 STOP_DIRECTION = {"total": -1.0, "reconstruction": -1.0, "retrieval": 1.0, "cos_gap": 1.0}
-
-
-@dataclass(frozen=True)
-class TrainResult:
-    run_dir: Path
-    steps: int  # steps completed
-    seconds: float  # training time, summed over resumed sessions
-    pairs_per_second: float
-    final: dict[str, float]  # last validation metrics
-    stopped_early: bool = False
 
 
 def save_checkpoint(path: Path, state: dict) -> None:

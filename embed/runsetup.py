@@ -2,12 +2,14 @@
 
 :func:`check_setup` refuses a configuration that cannot train on a cohort before anything is
 written; :func:`check_init_bundle` checks an ``--init`` bundle against the run; :func:`run_card`
-is the plain-JSON summary (``run.json``) that export turns into a bundle card.
+is the plain-JSON summary (``run.json``) that export turns into a bundle card; :class:`TrainResult`
+is what training returns.
 """
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from dataclasses import dataclass
+from pathlib import Path
 
 import nibabel as nib
 import numpy as np
@@ -20,8 +22,18 @@ from .model import final_kernel
 from .pairs import check_patch_fits, split_controls
 from .parallel import world_info
 
-if TYPE_CHECKING:
-    from .fit import TrainResult
+
+
+@dataclass(frozen=True)
+class TrainResult:
+    """What :func:`embed.fit.train` returns."""
+
+    run_dir: Path
+    steps: int  # steps completed
+    seconds: float  # training time, summed over resumed sessions
+    pairs_per_second: float
+    final: dict[str, float]  # last validation metrics
+    stopped_early: bool = False
 
 
 def check_setup(cfg: Config, cohort: Cohort) -> int | None:
@@ -66,7 +78,7 @@ def check_init_bundle(cfg: Config, cohort: Cohort, axis: int | None) -> dict:
     return tensors
 
 
-def run_card(cfg: Config, cohort: Cohort, axis: int | None, train_idx, val_idx, result: "TrainResult", state: dict) -> dict:
+def run_card(cfg: Config, cohort: Cohort, axis: int | None, train_idx, val_idx, result: TrainResult, state: dict) -> dict:
     """What export needs besides the weights, as plain JSON."""
     # The parameters load_subject needs to normalise a new case exactly as the controls were
     # (histogram landmarks included): see embed.normalise.
@@ -75,8 +87,8 @@ def run_card(cfg: Config, cohort: Cohort, axis: int | None, train_idx, val_idx, 
         "twinpatch_version": __version__,
         "contrasts": list(cohort.contrasts),
         "normalisation": normalisation,
-        "patch": {"size": cfg.patch.size, "dims": cfg.patch.dims, "plane": cfg.patch.plane if axis is not None else None,
-                  "axis": axis, "padding": "zeros"},
+        "patch": {"size": cfg.patch.size, "dims": cfg.patch.dims,
+                  "plane": cfg.patch.plane if axis is not None else None, "axis": axis, "padding": "zeros"},
         "grid": {
             "shape": list(cohort.mask.shape),
             "affine": np.asarray(cohort.affine, dtype=float).tolist(),
