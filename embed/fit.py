@@ -37,7 +37,7 @@ from .files import atomic, write_text
 from .cohort import Cohort
 from .config import Config, dumps, to_dict
 from .model import TwinAutoencoder, build, forward_matmul
-from .monitor import Monitor, collapse_warning, recon_grid, truncate_metrics
+from .monitor import Monitor, collapse_warning, recon_grid, spike_warning, truncate_metrics
 from .objective import (agreement, agreement_space, agreement_weight, cosine_diagnostics, mmd_to_prior,
                         pair_loss, prior_draw, retrieval_score)
 from .pairs import Pairs, RetrievalSet, sample_pairs, sample_retrieval, split_controls
@@ -271,6 +271,9 @@ def _train(cfg: Config, cohort: Cohort, run_dir: Path, axis: int | None, progres
               if s != "cohort" or k != "manifest"}
         monitor.hparams(hp, {k: state["val"][k] for k in ("reconstruction", "cos_colocated", "cos_random",
                                                           "effective_rank", "retrieval") if k in state["val"]})
+        spike = spike_warning(state.get("val_totals", []))
+        if spike:
+            monitor.warn(spike)
         monitor.close()
         write_card(done, seconds)
     return result
@@ -280,6 +283,7 @@ def _validate_step(model, val, retrieval, w, cfg, monitor, state, step, directio
     """Validate, log, warn on collapse, update the early-stopping state. Returns ``(stop now, z1)``."""
     metrics, grid, z1 = validate(model, val, retrieval, w, cfg)
     state["val"] = metrics
+    state["val_totals"] = (state.get("val_totals", []) + [metrics["total"]])[-6:]
     monitor.log(step, "val", metrics)
     monitor.image("val/reconstruction", grid, step)
     message = collapse_warning(metrics)

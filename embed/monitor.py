@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import json
 import math
+import statistics
 from pathlib import Path
 
 import numpy as np
@@ -36,6 +37,10 @@ MIN_EFFECTIVE_RANK = 1.5
 # collapse that the raw agreement term alone drives to (measured on the tiny test cohort:
 # agreement-only runs reach 1e-3 .. 2e-4, runs with reconstruction stay near 0.07).
 MIN_DIRECTION_SPREAD = 5e-3
+# A validation total above this multiple of the median of the previous 5 is a loss spike. Spikes
+# seen on the demo with agreement weight 2 were 2.5-5x and passed within 100 steps; ordinary
+# validation-to-validation changes late in a run stayed under 1.3x.
+SPIKE_FACTOR = 1.5
 
 
 def collapse_warning(diag: dict[str, float]) -> str | None:
@@ -50,6 +55,22 @@ def collapse_warning(diag: dict[str, float]) -> str | None:
         return (f"embedding collapse: effective rank {diag['effective_rank']:.2f} < {MIN_EFFECTIVE_RANK} "
                 "(embeddings lie on a line); lower loss.agreement_weight")
     return None
+
+
+def spike_warning(totals: list[float]) -> str | None:
+    """A one-line warning when the last of the validation ``totals`` is a loss spike, else None.
+
+    A spike: above ``SPIKE_FACTOR`` times the median of the (up to) 5 validations before it; needs
+    at least 3 before it.
+    """
+    if len(totals) < 4:
+        return None
+    median = statistics.median(totals[-6:-1])
+    if not totals[-1] > SPIKE_FACTOR * median:
+        return None
+    return (f"the run ended on a validation loss spike: total {totals[-1]:.4f}, {totals[-1] / median:.1f}x the median "
+            f"{median:.4f} of the validations before it, so the exported encoder is caught mid-spike; train it "
+            "again with a slightly different train.steps or a lower train.lr")
 
 
 def recon_grid(x: np.ndarray, recon: np.ndarray, n: int = 8) -> np.ndarray:

@@ -10,7 +10,7 @@ import pytest
 from embed.cohort import load_cohort
 from embed.config import load_config
 from embed.fit import train
-from embed.monitor import MIN_DIRECTION_SPREAD, collapse_warning
+from embed.monitor import MIN_DIRECTION_SPREAD, SPIKE_FACTOR, collapse_warning, spike_warning
 
 from .conftest import TINY_OVERRIDES
 
@@ -65,3 +65,14 @@ def test_tensorboard_holds_scalars_images_hparams_and_projector(tiny_run):
     meta = next(tb.rglob("metadata.tsv")).read_text().splitlines()
     assert meta[0] == "subject\tslice" and len(meta) == 1 + 64  # train.val_pairs=64 < projector_points
     assert all(row.split("\t")[0].startswith("ctl") for row in meta[1:])
+
+
+def test_spike_warning_fires_only_when_the_last_validation_jumps():
+    # Totals seen on the demo (agreement weight 2): a run that ended on a spike, one that recovered.
+    ended = [0.0245, 0.0230, 0.0231, 0.0228, 0.0224, 0.1027]
+    message = spike_warning(ended)
+    assert message and "4.5x the median 0.0230" in message and "train.steps" in message
+    assert spike_warning([0.0245, 0.0230, 0.1002, 0.0228, 0.0224, 0.0231]) is None  # spike earlier, recovered
+    assert spike_warning([0.02, 0.02, 0.02 * SPIKE_FACTOR]) is None  # too few validations to judge
+    assert spike_warning([0.02, 0.02, 0.02, 0.02 * SPIKE_FACTOR]) is None  # equal to the factor: not above it
+    assert spike_warning([0.02, 0.02, 0.02, 0.02 * SPIKE_FACTOR * 1.01]) is not None
