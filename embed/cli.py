@@ -228,7 +228,7 @@ def _cmd_qc(args) -> None:
 
 
 def _cmd_train(args) -> None:
-    from .config import load_config
+    from .config import load_config, load_run_config
     from .jobs import train_job
 
     overrides = list(args.overrides)
@@ -241,7 +241,7 @@ def _cmd_train(args) -> None:
         if not (args.resume / "config.toml").is_file():
             raise InputError(f"--resume {args.resume}: config.toml is missing, so this is not a twinpatch run; "
                              "pass the RUN_DIR of a run started with `twinpatch train --out RUN_DIR`")
-        cfg = load_config(args.resume / "config.toml")
+        cfg = load_run_config(args.resume / "config.toml")
         out = train_job(cfg, args.resume, progress=not args.quiet, resume=True)
     else:
         if args.cohort:

@@ -274,6 +274,27 @@ def _toml_value(value: Any) -> str:
     raise AssertionError(f"cannot write {value!r} as TOML")  # internal invariant
 
 
+# Keys added after twinpatch first wrote run directories, with the value every run written before
+# them used. A run's own config.toml holds every key known when it was written, so a missing key
+# means "older than the key"; today's default would change the run (resume a 2D run as 3D).
+ADDED_LATER: dict[str, dict[str, Any]] = {
+    "cohort": {"contrasts": [], "split_seed": 0},
+    "patch": {"dims": 2},
+    "train": {"input_noise": 0.0},
+}
+
+
+def load_run_config(path: str | Path) -> Config:
+    """A run directory's ``config.toml``; keys it lacks take their :data:`ADDED_LATER` values."""
+    data = read_toml(path, "run configuration", "the config.toml that `twinpatch train` writes")
+    for section, keys in ADDED_LATER.items():
+        table = data.setdefault(section, {})
+        if isinstance(table, dict):
+            for key, value in keys.items():
+                table.setdefault(key, value)
+    return from_dict(data, where=str(path))
+
+
 def dumps(cfg: Config) -> str:
     """The resolved configuration as TOML text (every key written, defaults included)."""
     lines = ["# resolved twinpatch configuration: every key, defaults included"]

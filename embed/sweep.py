@@ -17,7 +17,7 @@ import shlex
 from pathlib import Path
 from typing import Callable
 
-from .config import Config, load_config, to_dict
+from .config import Config, load_run_config, to_dict
 from .errors import InputError
 from .files import write_text
 
@@ -34,7 +34,7 @@ def check_existing(spec: RunSpec, run_dir: Path) -> None:
     saved = run_dir / "config.toml"
     if not saved.is_file():
         return
-    have = to_dict(load_config(saved))
+    have = to_dict(load_run_config(saved))
     for section, values in to_dict(spec.cfg).items():
         for key, want in values.items():
             if have[section][key] != want:

@@ -433,3 +433,23 @@ def test_contrasts_must_be_a_list_of_strings():
     with pytest.raises(ConfigError, match=r"cohort.contrasts must be a list of strings"):
         from_dict({"cohort": {"contrasts": "FLAIR"}})
     assert from_dict({"cohort": {"contrasts": ["FLAIR"]}}).cohort.contrasts == ("FLAIR",)
+
+
+def test_a_run_written_before_a_key_existed_keeps_what_it_was(tmp_path):
+    # A config.toml from before patch.dims / cohort.contrasts / cohort.split_seed / train.input_noise:
+    # dumps() of today's config with those keys removed.
+    from embed.config import ADDED_LATER, load_run_config
+
+    old = Config(patch=PatchConfig(size=9, dims=2), cohort=dataclasses.replace(Config().cohort, contrasts=()))
+    text = dumps(old)
+    for keys in ADDED_LATER.values():
+        text = "\n".join(line for line in text.splitlines() if line.split(" = ")[0] not in keys)
+    path = tmp_path / "config.toml"
+    path.write_text(text + "\n")
+    assert "dims" not in path.read_text() and "contrasts" not in path.read_text()
+    run = load_run_config(path)
+    assert run == old  # a 2D run on every contrast, as it was trained
+    assert load_config(path).patch.dims == Config().patch.dims == 3  # a user config takes today's defaults
+    whole = tmp_path / "whole.toml"
+    whole.write_text(dumps(Config()))
+    assert load_run_config(whole) == Config()  # keys present are never replaced

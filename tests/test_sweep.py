@@ -410,3 +410,13 @@ def test_sweep_refuses_a_changed_config(swept, tmp_path, base_toml):
                                          r"plans 0\.01; the sweep changed since that run was trained"):
         run_sweep(changed, out, progress=False, bench_fn=fake_bench)
     assert stamps(out) == before and not calls(tmp_path / "calls.txt")  # refused before any work
+
+
+@pytest.mark.parametrize("path", sorted((ROOT / "configs").glob("sweep_*.toml")), ids=lambda p: p.name)
+def test_every_shipped_sweep_file_plans(path):
+    # The README's sweeps were measured on squares (before cubes became the default) except the 3D
+    # ones: each file pins the patch shape it was measured with.
+    specs = plan(load_sweep(path))
+    assert specs and len({s.id for s in specs}) == len(specs)
+    cubes = "patch3d" in path.name or "cubes" in path.name
+    assert all(s.cfg.patch.dims == (3 if cubes else 2) for s in specs)
