@@ -51,7 +51,7 @@ class ModelConfig:
 
 @dataclass(frozen=True)
 class LossConfig:
-    agreement_weight: float = 2.0  # final weight w of (1 - cosine); 0 = plain autoencoder; chosen by sweep
+    agreement_weight: float = 4.0  # final weight w of (1 - cosine); 0 = plain autoencoder; chosen by sweep
     schedule: str = "ramp"  # constant | ramp (linear 0 -> w) | cosine_ramp | step (0, then w)
     ramp_fraction: float = 0.5  # fraction of the steps the ramp takes (step: where w switches on)
     centred: bool = False  # agreement on batch-centred embeddings

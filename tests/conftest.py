@@ -18,7 +18,8 @@ def tiny_manifest(tmp_path_factory):
 
 TINY_OVERRIDES = ["train.steps=30", "train.batch_size=32", "train.val_every=10", "train.val_pairs=64",
                   "model.channels=[8, 16]", "model.dim=8", "patch.size=5", "cohort.val_controls=2", "cohort.contrasts=[]",
-                  "patch.dims=2", "train.precision=bf16"]  # small and fast: 2D patches, the bf16 path
+                  "patch.dims=2", "train.precision=bf16",  # small and fast: 2D patches, the bf16 path
+                  "loss.agreement_weight=2.0"]
 
 
 @pytest.fixture(scope="session")
