@@ -114,17 +114,17 @@ class Encoder:
         busy[:, :size_a, :size_b] = np.moveaxis(mask, self.axis, 0)
         busy = busy.reshape(n_slices, n_a, t, n_b, t).any(axis=(2, 4))
         tiles = [(int(li), int(ti) * t, int(tj) * t) for li, ti, tj in np.argwhere(busy)]
-        return -(-len(tiles) // TILE_BATCH), self._inputs2d(v, tiles)
+        return -(-len(tiles) // TILE_BATCH), self._inputs2d(v, tiles, n_a * t, n_b * t)
 
-    def _inputs2d(self, v: np.ndarray, tiles: list[tuple[int, int, int]]):
+    def _inputs2d(self, v: np.ndarray, tiles: list[tuple[int, int, int]], side_a: int, side_b: int):
+        """Batches of tile inputs cut from zero-padded slices ``(C, side_a + p - 1, side_b + p - 1)``."""
         h, t = self.patch_size // 2, TILE
-        n_a, n_b = -(-v.shape[2] // t), -(-v.shape[3] // t)
         size_a, size_b = v.shape[2:]
         pad = {}  # zero-padded slices, made as the tiles reach them and dropped after
         for k in range(0, len(tiles), TILE_BATCH):
             batch = tiles[k:k + TILE_BATCH]
             for li in {b[0] for b in batch} - pad.keys():
-                padded = np.zeros((v.shape[1], n_a * t + 2 * h, n_b * t + 2 * h), np.float32)
+                padded = np.zeros((v.shape[1], side_a + 2 * h, side_b + 2 * h), np.float32)
                 padded[:, h:h + size_a, h:h + size_b] = v[li]
                 pad[li] = padded
             x = np.stack([pad[li][:, r:r + t + 2 * h, c:c + t + 2 * h] for li, r, c in batch])
@@ -153,6 +153,7 @@ class Encoder:
         return -(-len(corners) // TILE_BATCH), self._inputs3d(vol, corners, n_t)
 
     def _inputs3d(self, vol: np.ndarray, corners: list[tuple[int, int, int]], n_t: list[int]):
+        """Batches of tile inputs cut from the volume zero-padded to ``n_t`` tiles plus ``p // 2``."""
         h, t, shape = self.patch_size // 2, TILE_3D, vol.shape[1:]
         padded = np.zeros((vol.shape[0],) + tuple(n * t + 2 * h for n in n_t), np.float32)
         padded[:, h:h + shape[0], h:h + shape[1], h:h + shape[2]] = vol

@@ -221,7 +221,7 @@ def forward_matmul(model: TwinAutoencoder, x: torch.Tensor, dtype: torch.dtype =
     """
     n, dims = x.shape[0], model.dims
     sp = tuple(range(2, 2 + dims))  # spatial axes of a module weight
-    conv_type, tconv_type = (nn.Conv2d, nn.ConvTranspose2d) if dims == 2 else (nn.Conv3d, nn.ConvTranspose3d)
+    conv_type, tconv_type = _layers(dims)
     convs = [m for m in model.encoder.layers if isinstance(m, conv_type)]
     # The input is windowed in float32 and then cast: PyTorch's bfloat16 gather is several times
     # slower than its float32 one for 1 or 2 channels (measured: benchmarks/train_speed.py notes).
